@@ -1,0 +1,143 @@
+//! The `actuary` binary: parse the command line, call the library, print the
+//! cause chain of any error and map it to an exit code.
+
+use std::process::ExitCode;
+
+use anyhow::{Context, Result, bail};
+use clap::Parser;
+
+use actuary::cli::{Cli, Command};
+use actuary::error::{CAUTION, EXIT_FAILURE};
+use actuary::runner::{self, RunOptions, Stage};
+use actuary::spec::Spec;
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    match dispatch(cli.command) {
+        Ok(code) => ExitCode::from(code as u8),
+        Err(err) => {
+            if is_broken_pipe(&err) {
+                return ExitCode::SUCCESS;
+            }
+            eprintln!("error: {err}");
+            for cause in err.chain().skip(1) {
+                eprintln!("  caused by: {cause}");
+            }
+            ExitCode::from(EXIT_FAILURE as u8)
+        }
+    }
+}
+
+fn is_broken_pipe(err: &anyhow::Error) -> bool {
+    err.chain().any(|c| {
+        c.downcast_ref::<std::io::Error>()
+            .is_some_and(|e| e.kind() == std::io::ErrorKind::BrokenPipe)
+    })
+}
+
+fn default_jobs(jobs: Option<usize>) -> usize {
+    jobs.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
+        .max(1)
+}
+
+fn dispatch(command: Command) -> Result<i32> {
+    match command {
+        Command::Check { spec, json, jobs } => {
+            let spec = Spec::load(&spec)?;
+            let report = actuary::check::check_inputs(&spec, default_jobs(jobs));
+            if json {
+                println!("{}", serde_json::to_string_pretty(&report)?);
+            } else {
+                for (set, n) in &report.clips {
+                    println!("set {set}: {n} clip(s)");
+                }
+                println!("sidecars parsed: {}", report.sidecars);
+                for p in &report.problems {
+                    println!("problem: {}: {}", p.path.display(), p.message);
+                }
+                if report.ok() {
+                    println!("ok: spec and inputs are valid");
+                } else {
+                    println!("{} problem(s) found", report.problems.len());
+                }
+            }
+            Ok(if report.ok() { 0 } else { EXIT_FAILURE })
+        }
+        Command::Run { spec, until, jobs } => {
+            let until = match until {
+                None => Stage::Shard,
+                Some(name) => match Stage::parse(&name) {
+                    Some(s) => s,
+                    None => bail!("unknown stage `{name}` for --until (allowed: decode, align, fit, label, shard)"),
+                },
+            };
+            let spec = Spec::load(&spec)?;
+            let opts = RunOptions {
+                until,
+                threads: default_jobs(jobs),
+            };
+            runner::run(&spec, &opts)?;
+            let last = runner::stage_dir(&spec.out, until);
+            if until == Stage::Shard {
+                println!("shards: {}", last.display());
+            } else {
+                println!("stopped after {until}: outputs in {}", last.display());
+            }
+            println!("{CAUTION}");
+            Ok(0)
+        }
+        Command::Inspect {
+            run,
+            stage,
+            json,
+            verify,
+        } => {
+            let stage = match stage.as_deref() {
+                None => None,
+                Some(name) => Some(Stage::parse(name).with_context(|| {
+                    format!("unknown stage `{name}` (allowed: decode, align, fit, label, shard)")
+                })?),
+            };
+            let text = actuary::report::inspect(&run, stage, json, verify)?;
+            print!("{text}");
+            Ok(0)
+        }
+        Command::ExportFrames { run, clip, dir, set } => {
+            let n = actuary::export::export_frames(&run, &clip, set.as_deref(), &dir)?;
+            println!("wrote {n} frame(s) to {}", dir.display());
+            Ok(0)
+        }
+        Command::Report { run, output } => {
+            let out = output.unwrap_or_else(|| run.join("report.html"));
+            actuary::report::write_report(&run, &out)?;
+            println!("report: {}", out.display());
+            Ok(0)
+        }
+        Command::DemoClips {
+            dir,
+            seed,
+            robot_clips,
+            human_clips,
+        } => {
+            let mut opts = actuary::demo::DemoOptions::default();
+            if let Some(s) = seed {
+                opts.seed = s;
+            }
+            if let Some(n) = robot_clips {
+                opts.robot_clips = n;
+            }
+            if let Some(n) = human_clips {
+                opts.human_clips = n;
+            }
+            let summary = actuary::demo::generate(&dir, &opts)?;
+            println!(
+                "wrote {} robot and {} human clip(s) to {} ({} bytes)",
+                summary.robot_clips,
+                summary.human_clips,
+                dir.display(),
+                summary.bytes
+            );
+            Ok(0)
+        }
+    }
+}

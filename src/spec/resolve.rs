@@ -1,0 +1,261 @@
+//! Turns a [`RawSpec`] into a checked [`Spec`]: fills defaults, makes paths
+//! absolute (relative to the spec file), and checks ranges, recording every
+//! problem with its line and column before failing once.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use toml::Spanned;
+
+use super::error::Problems;
+use super::raw::{RawActions, RawDecode, RawSet, RawSpec};
+use super::values::{CropValue, OffsetValue};
+use super::{ActionsOptions, Offset, SetSpec, Spec};
+use crate::actions::MapRule;
+use crate::decode::{self, Crop, DecodeOptions};
+
+/// Default seed.
+pub const DEFAULT_SEED: u64 = 7;
+/// Default `[actions] offset-window`, seconds either side.
+pub const DEFAULT_OFFSET_WINDOW_S: f64 = 1.0;
+/// Default `[actions] offset-min-correlation`.
+pub const DEFAULT_OFFSET_MIN_CORRELATION: f64 = 0.3;
+
+/// Resolves the raw spec; `base` is the spec file's folder.
+pub(crate) fn resolve(raw: RawSpec, path: &Path, base: &Path, p: &mut Problems<'_>) -> Spec {
+    let RawSpec {
+        out,
+        seed,
+        sets,
+        decode,
+        actions,
+        align,
+        fit,
+        label,
+        shard,
+        cluster,
+    } = raw;
+    let out_path = absolute(base, out.get_ref());
+    if out.get_ref().trim().is_empty() {
+        p.at("out", out.span(), "must name a folder");
+    }
+    let seed = match seed {
+        None => DEFAULT_SEED,
+        Some(s) if *s.get_ref() < 0 => {
+            p.at("seed", s.span(), format!("must be >= 0 (got {})", s.get_ref()));
+            DEFAULT_SEED
+        }
+        Some(s) => *s.get_ref() as u64,
+    };
+    let sets_span = sets.span();
+    let sets = resolve_sets(sets.into_inner(), sets_span, base, p);
+    Spec {
+        path: path.to_path_buf(),
+        out: out_path,
+        seed,
+        sets,
+        decode: resolve_decode(decode, p),
+        actions: resolve_actions(actions, p),
+        align: super::align::resolve(&align, p),
+        fit: super::fit::resolve(&fit, p),
+        label: super::label::resolve(&label, p),
+        shard: super::shard::resolve(&shard, p),
+        cluster: super::cluster::resolve(&cluster, p),
+        text_hash: String::new(),
+    }
+}
+
+/// `base/rel`, or `rel` when it is absolute.
+pub fn absolute(base: &Path, rel: &str) -> PathBuf {
+    let rel = Path::new(rel);
+    if rel.is_absolute() {
+        rel.to_path_buf()
+    } else {
+        base.join(rel)
+    }
+}
+
+fn resolve_sets(
+    sets: BTreeMap<String, RawSet>,
+    span: std::ops::Range<usize>,
+    base: &Path,
+    p: &mut Problems<'_>,
+) -> Vec<SetSpec> {
+    if sets.is_empty() {
+        p.at("sets", span.clone(), "at least one clip set is needed");
+    }
+    let mut out = Vec::new();
+    for (name, set) in sets {
+        let RawSet {
+            dir,
+            labelled,
+            eval_truth,
+        } = set;
+        let key = format!("sets.{name}");
+        if !name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+        {
+            p.at(&key, dir.span(), "set names may hold only letters, digits, `-` and `_`");
+        }
+        let dir_path = absolute(base, dir.get_ref());
+        if !dir_path.is_dir() {
+            p.at(
+                &format!("{key}.dir"),
+                dir.span(),
+                format!("folder {} does not exist", dir_path.display()),
+            );
+        }
+        let eval_truth = eval_truth.map(|t| {
+            let tp = absolute(base, t.get_ref());
+            if !tp.is_dir() {
+                p.at(
+                    &format!("{key}.eval-truth"),
+                    t.span(),
+                    format!("folder {} does not exist", tp.display()),
+                );
+            }
+            tp
+        });
+        out.push(SetSpec {
+            name,
+            dir: dir_path,
+            labelled,
+            eval_truth,
+        });
+    }
+    if !out.iter().any(|s| s.labelled) && !out.is_empty() {
+        p.at("sets", span, "at least one set must have `labelled = true`");
+    }
+    out
+}
+
+fn positive_f64(key: &str, v: &Option<Spanned<f64>>, default: f64, p: &mut Problems<'_>) -> f64 {
+    match v {
+        None => default,
+        Some(s) if !(s.get_ref().is_finite() && *s.get_ref() > 0.0) => {
+            p.at(key, s.span(), format!("must be a positive number (got {})", s.get_ref()));
+            default
+        }
+        Some(s) => *s.get_ref(),
+    }
+}
+
+fn positive_u32(key: &str, v: &Option<Spanned<i64>>, default: u32, max: u32, p: &mut Problems<'_>) -> u32 {
+    match v {
+        None => default,
+        Some(s) if *s.get_ref() < 1 || *s.get_ref() > max as i64 => {
+            p.at(key, s.span(), format!("must be an integer from 1 to {max} (got {})", s.get_ref()));
+            default
+        }
+        Some(s) => *s.get_ref() as u32,
+    }
+}
+
+fn resolve_decode(raw: RawDecode, p: &mut Problems<'_>) -> DecodeOptions {
+    let RawDecode {
+        fps,
+        size,
+        crop,
+        scaler,
+        on_error,
+        max_width,
+        max_height,
+        max_duration,
+    } = raw;
+    let d = DecodeOptions::default();
+    let fps = positive_f64("decode.fps", &fps, decode::DEFAULT_FPS, p);
+    if fps > 1000.0 {
+        p.missing("decode.fps", format!("must be at most 1000 (got {fps})"));
+    }
+    let (width, height) = match size {
+        None => decode::DEFAULT_SIZE,
+        Some(s) => match s.get_ref().as_slice() {
+            [w, h] if (2..=4096).contains(w) && (2..=4096).contains(h) && w % 2 == 0 && h % 2 == 0 => {
+                (*w as u32, *h as u32)
+            }
+            other => {
+                p.at(
+                    "decode.size",
+                    s.span(),
+                    format!("must be [width, height], even integers from 2 to 4096 (got {other:?})"),
+                );
+                decode::DEFAULT_SIZE
+            }
+        },
+    };
+    let crop = match crop {
+        None => Crop::Center,
+        Some(c) => match *c.get_ref() {
+            CropValue::Center => Crop::Center,
+            CropValue::None => Crop::None,
+            CropValue::Box([x, y, w, h]) => {
+                if x < 0 || y < 0 || w < 2 || h < 2 || [x, y, w, h].iter().any(|v| *v > 65536) {
+                    p.at(
+                        "decode.crop",
+                        c.span(),
+                        "a box is [x, y, width, height] with x, y >= 0 and width, height >= 2",
+                    );
+                }
+                Crop::Box {
+                    x: x.max(0) as u32,
+                    y: y.max(0) as u32,
+                    w: w.max(2) as u32,
+                    h: h.max(2) as u32,
+                }
+            }
+        },
+    };
+    DecodeOptions {
+        fps,
+        width,
+        height,
+        crop,
+        scaler: scaler.unwrap_or(d.scaler),
+        on_error: on_error.unwrap_or(d.on_error),
+        max_width: positive_u32("decode.max-width", &max_width, d.max_width, 65536, p),
+        max_height: positive_u32("decode.max-height", &max_height, d.max_height, 65536, p),
+        max_duration_s: positive_f64("decode.max-duration", &max_duration, d.max_duration_s, p),
+    }
+}
+
+fn resolve_actions(raw: RawActions, p: &mut Problems<'_>) -> ActionsOptions {
+    let RawActions {
+        map,
+        default_rule,
+        offset,
+        offset_window,
+        offset_min_correlation,
+    } = raw;
+    let offset = match offset {
+        None => Offset::Seconds(0.0),
+        Some(o) => match *o.get_ref() {
+            OffsetValue::Estimate => Offset::Estimate,
+            OffsetValue::Seconds(s) if s.is_finite() && s.abs() <= 3600.0 => Offset::Seconds(s),
+            OffsetValue::Seconds(s) => {
+                p.at("actions.offset", o.span(), format!("must be within +-3600 s (got {s})"));
+                Offset::Seconds(0.0)
+            }
+        },
+    };
+    let window = positive_f64("actions.offset-window", &offset_window, DEFAULT_OFFSET_WINDOW_S, p);
+    let min_corr = match offset_min_correlation {
+        None => DEFAULT_OFFSET_MIN_CORRELATION,
+        Some(c) if !(0.0..=1.0).contains(c.get_ref()) => {
+            p.at(
+                "actions.offset-min-correlation",
+                c.span(),
+                format!("must be from 0 to 1 (got {})", c.get_ref()),
+            );
+            DEFAULT_OFFSET_MIN_CORRELATION
+        }
+        Some(c) => *c.get_ref(),
+    };
+    ActionsOptions {
+        map,
+        default_rule: default_rule.unwrap_or(MapRule::Hold),
+        offset,
+        offset_window_s: window,
+        offset_min_correlation: min_corr,
+    }
+}
