@@ -1,1 +1,198 @@
-//! (in progress)
+//! The label stage: for every transition of every decoded clip, an inferred
+//! action (`action_est`, the ensemble mean in action units), a calibrated
+//! per-dimension standard deviation (`action_std`: aleatoric + epistemic,
+//! then split conformal on the `calib` clips, stored as `q * std / z`), a
+//! calibrated `confidence`, an `ood` flag and a discrete `code`.
+//!
+//! Data flow: `RUN/decode/clips/**` (frames, records with recorded actions)
+//! and the fit stage's model and clip splits ([`model::FitOutputs`]) in;
+//! `RUN/label/` out (see [`output`]). The maths lives in [`conformal`],
+//! [`reliability`], [`kmeans`] and [`stats`]; [`stage`] runs the two passes.
+
+pub mod conformal;
+pub mod inspect;
+pub mod kmeans;
+pub mod model;
+pub mod output;
+pub mod reliability;
+pub mod stage;
+pub mod stats;
+
+use std::path::PathBuf;
+
+use serde::Serialize;
+
+pub use model::{FitOutputs, FramePrep, Split, Splits, Standardisation, TransitionBatch, TransitionModel};
+pub use output::{CalibrationFigures, ClipLabels, CodesTable};
+pub use stage::{LabelJob, LabelSummary, label_run};
+
+/// Default miscoverage rate of the calibrated intervals.
+pub const DEFAULT_ALPHA: f64 = 0.1;
+/// Default error tolerance, as a fraction of each dimension's labelled std.
+pub const DEFAULT_TOLERANCE: f64 = 0.25;
+/// Default number of discrete action codes.
+pub const DEFAULT_CODES: u32 = 16;
+/// Default most train transitions k-means is fitted on.
+pub const DEFAULT_KMEANS_SAMPLE: u32 = 20_000;
+/// Default k-means++ restarts.
+pub const DEFAULT_KMEANS_RESTARTS: u32 = 10;
+/// Default most Lloyd iterations per restart.
+pub const DEFAULT_KMEANS_ITERATIONS: u32 = 300;
+/// Default transitions per inference batch.
+pub const DEFAULT_BATCH: u32 = 256;
+/// Equal-width bins of the reliability figures (expected calibration error).
+pub const RELIABILITY_BINS: usize = 10;
+
+/// Resolved `[label]` settings.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct LabelOptions {
+    /// Miscoverage rate: `action_est +- z * action_std` covers 1 - alpha.
+    pub alpha: f64,
+    /// Tolerance of `confidence`, as a fraction of each dimension's labelled std.
+    pub tolerance: f64,
+    /// Number of codes (k of k-means).
+    pub codes: u32,
+    /// Most train transitions k-means is fitted on (a seeded sample beyond).
+    pub kmeans_sample: u32,
+    /// k-means++ restarts.
+    pub kmeans_restarts: u32,
+    /// Most Lloyd iterations per restart.
+    pub kmeans_iterations: u32,
+    /// Transitions per inference batch.
+    pub batch: u32,
+}
+
+impl Default for LabelOptions {
+    fn default() -> Self {
+        Self {
+            alpha: DEFAULT_ALPHA,
+            tolerance: DEFAULT_TOLERANCE,
+            codes: DEFAULT_CODES,
+            kmeans_sample: DEFAULT_KMEANS_SAMPLE,
+            kmeans_restarts: DEFAULT_KMEANS_RESTARTS,
+            kmeans_iterations: DEFAULT_KMEANS_ITERATIONS,
+            batch: DEFAULT_BATCH,
+        }
+    }
+}
+
+/// Errors of the label stage.
+#[derive(Debug, thiserror::Error)]
+pub enum LabelError {
+    /// A file could not be read or written.
+    #[error("{path}: {source}")]
+    Io {
+        /// The file or folder.
+        path: PathBuf,
+        /// The cause.
+        #[source]
+        source: std::io::Error,
+    },
+    /// A frame store could not be read.
+    #[error(transparent)]
+    Frames(#[from] crate::store::FrameStoreError),
+    /// The frame store and the clip record disagree.
+    #[error("frame store {path} holds {store} frames, its record says {record}")]
+    FrameCount {
+        /// The frame store.
+        path: PathBuf,
+        /// Frames in the record.
+        record: u32,
+        /// Frames in the store.
+        store: usize,
+    },
+    /// The fit stage's outputs are not there or cannot be loaded.
+    #[error("cannot load the fitted model from {dir}: {reason}")]
+    FitUnavailable {
+        /// `RUN/fit/`.
+        dir: PathBuf,
+        /// Why.
+        reason: String,
+    },
+    /// The model failed on a batch.
+    #[error("model inference failed on clip {set}/{id} at transition {first_transition}")]
+    Model {
+        /// Set.
+        set: String,
+        /// Clip id.
+        id: String,
+        /// First transition of the batch.
+        first_transition: usize,
+        /// The cause.
+        #[source]
+        source: model::ModelFailure,
+    },
+    /// The model returned the wrong number of values.
+    #[error("model output for clip {set}/{id}: {reason}")]
+    ModelOutput {
+        /// Set.
+        set: String,
+        /// Clip id.
+        id: String,
+        /// What is wrong.
+        reason: String,
+    },
+    /// A labelled clip has no (or the wrong number of) recorded actions.
+    #[error("labelled clip {set}/{id} has {rows} action rows for {transitions} transitions")]
+    MissingActions {
+        /// Set.
+        set: String,
+        /// Clip id.
+        id: String,
+        /// Rows found.
+        rows: usize,
+        /// Transitions of the clip.
+        transitions: usize,
+    },
+    /// Too few calibration transitions for a finite conformal quantile.
+    #[error("calib clips hold {transitions} transitions; alpha {alpha} needs at least {needed}")]
+    TooFewCalib {
+        /// Calib transitions.
+        transitions: usize,
+        /// Needed.
+        needed: usize,
+        /// Alpha.
+        alpha: f64,
+    },
+    /// k-means could not be fitted.
+    #[error("fitting the action codes: {0}")]
+    KMeans(#[from] kmeans::KMeansError),
+}
+
+/// Loads the fit stage's model and splits from `RUN/fit/` (the one place
+/// label depends on fit's API).
+pub fn load_fit(run_dir: &std::path::Path) -> Result<FitOutputs, LabelError> {
+    Err(LabelError::FitUnavailable {
+        dir: run_dir.join("fit"),
+        reason: "this build's fit stage does not expose a fitted model yet".into(),
+    })
+}
+
+/// Runs the label stage.
+pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::StageManifest, LabelError> {
+    let fit = load_fit(&ctx.run_dir)?;
+    let job = LabelJob {
+        run_dir: &ctx.run_dir,
+        label_dir: &ctx.stage_dir,
+        key: &ctx.key,
+        opts: &ctx.spec.label,
+        seed: ctx.spec.seed,
+        threads: ctx.threads,
+    };
+    let summary = label_run(&job, &fit, &model::DecodedFrames)?;
+    Ok(manifest_of(&summary))
+}
+
+/// The stage manifest of a label run (the runner fills key and timings).
+pub fn manifest_of(summary: &LabelSummary) -> crate::store::StageManifest {
+    let mut m = crate::store::StageManifest::default();
+    m.counts.insert("clips".into(), summary.clips_labelled + summary.clips_reused);
+    m.counts.insert("clips_reused".into(), summary.clips_reused);
+    m.counts.insert("transitions".into(), summary.transitions);
+    m.counts.insert("transitions_inferred".into(), summary.transitions_inferred);
+    m.counts.insert("codes_used".into(), summary.codes_used);
+    m.timings.insert("fit_pass_s".into(), summary.seconds.0);
+    m.timings.insert("label_pass_s".into(), summary.seconds.1);
+    m.summary = serde_json::to_value(summary).unwrap_or_default();
+    m
+}

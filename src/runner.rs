@@ -217,6 +217,7 @@ fn run_stage(stage: Stage, ctx: &StageContext<'_>) -> Result<StageManifest, RunE
     let boxed = |e: Box<dyn std::error::Error + Send + Sync>| RunError::Stage { stage, source: e };
     match stage {
         Stage::Decode => crate::decode::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
+        Stage::Align => crate::align::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
         _ => Err(RunError::NotBuilt(stage)),
     }
 }

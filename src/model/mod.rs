@@ -1,1 +1,196 @@
-//! (in progress)
+//! Candle networks and losses of the fit stage (no I/O).
+//!
+//! A semi-supervised variational inverse-dynamics model: a frame encoder, a
+//! diagonal-Gaussian posterior q(z | frame t, frame t+1) over a latent action,
+//! a standard-normal prior, a forward decoder p(frame t+1 | frame t, z) with a
+//! Gaussian likelihood of one shared variance, an ensemble of action heads
+//! z -> (mean, log-variance) trained on bootstrap resamples of the labelled
+//! transitions, and an MMD^2 penalty aligning the labelled and unlabelled
+//! domains' posterior means. [`net`] holds the maths and tensor shapes,
+//! [`losses`] the loss terms, [`layers`] the GEMM-only building blocks.
+//!
+//! Threads: candle's CPU kernels run on the *current* rayon pool (its matrix
+//! products go through `gemm` with `Parallelism::Rayon`, which splits work
+//! into `candle_core::utils::get_num_threads()` tasks, i.e. `RAYON_NUM_THREADS`
+//! or the physical core count, and runs them with `par_iter`; its convolution
+//! and reduction kernels use `par_iter` too). So calling the model inside
+//! `pool.install(..)` of a pool built with `crate::util::thread_pool(n)`
+//! bounds it to `n` threads; elementwise ops are single-threaded.
+
+pub mod init;
+pub mod layers;
+pub mod losses;
+pub mod net;
+pub mod optim;
+pub mod rng;
+
+pub use init::SeededInit;
+pub use losses::{Bandwidth, SharedVariance};
+pub use optim::{AdamW, AdamWParams};
+pub use net::{Batch, Inference, LossOptions, LossParts, Net, frames_to_tensor};
+pub use rng::Rng;
+
+use serde::{Deserialize, Serialize};
+
+/// Default latent size.
+pub const DEFAULT_LATENT: usize = 8;
+/// Default widths of the pyramid levels (channels after each 2x2 step).
+pub const DEFAULT_WIDTHS: [usize; 4] = [32, 64, 64, 64];
+/// Default width of the flat feature vector.
+pub const DEFAULT_HIDDEN: usize = 128;
+/// Default hidden width of each action head.
+pub const DEFAULT_HEAD_HIDDEN: usize = 64;
+/// Default ensemble size.
+pub const DEFAULT_HEADS: usize = 5;
+/// Default reconstruction level: 1 = predict the next frame at half resolution.
+pub const DEFAULT_RECON_LEVEL: usize = 1;
+/// Default weight of the action NLL in the loss.
+pub const DEFAULT_ACTION_WEIGHT: f64 = 100.0;
+/// Default weight of the MMD^2 alignment penalty.
+pub const DEFAULT_ALIGN_WEIGHT: f64 = 100.0;
+/// Initial `ln s2` of a learned shared variance (s2 = 0.01 for [0, 1] pixels).
+pub const INITIAL_LOG_VARIANCE: f64 = -4.605_170_185_988_091;
+
+/// The network's shape. Two networks with equal configs have the same
+/// parameter names and shapes.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Config {
+    /// Frame width in pixels (divisible by `2^levels`).
+    pub width: usize,
+    /// Frame height in pixels (divisible by `2^levels`).
+    pub height: usize,
+    /// Latent action size `k`.
+    pub latent: usize,
+    /// Action dimensions `A`.
+    pub action_dims: usize,
+    /// Number of 2x2 pyramid levels `L`.
+    pub levels: usize,
+    /// Channels after each level (`levels` entries).
+    pub widths: Vec<usize>,
+    /// Width of the flat feature vector.
+    pub hidden: usize,
+    /// Hidden width of each action head.
+    pub head_hidden: usize,
+    /// Ensemble size `M`.
+    pub heads: usize,
+    /// Resolution level of the reconstruction (0 = full, 1 = half, ...; at most `levels`).
+    pub recon_level: usize,
+    /// How the decoder's shared variance is obtained.
+    pub variance: SharedVariance,
+}
+
+impl Default for Config {
+    fn default() -> Self {
+        Self {
+            width: 64,
+            height: 64,
+            latent: DEFAULT_LATENT,
+            action_dims: 3,
+            levels: DEFAULT_WIDTHS.len(),
+            widths: DEFAULT_WIDTHS.to_vec(),
+            hidden: DEFAULT_HIDDEN,
+            head_hidden: DEFAULT_HEAD_HIDDEN,
+            heads: DEFAULT_HEADS,
+            recon_level: DEFAULT_RECON_LEVEL,
+            variance: SharedVariance::ClosedForm,
+        }
+    }
+}
+
+/// A network configuration that cannot be built.
+#[derive(Debug, thiserror::Error)]
+pub enum ModelError {
+    /// The frame size is not divisible by `2^levels`.
+    #[error("frame size {width}x{height} is not divisible by {factor} (2^{levels} pyramid levels)")]
+    FrameSize {
+        /// Width.
+        width: usize,
+        /// Height.
+        height: usize,
+        /// Levels.
+        levels: usize,
+        /// `2^levels`.
+        factor: usize,
+    },
+    /// `widths` does not have one entry per level.
+    #[error("{widths} pyramid widths given for {levels} levels")]
+    Widths {
+        /// Entries given.
+        widths: usize,
+        /// Levels.
+        levels: usize,
+    },
+    /// A size that must be positive is zero.
+    #[error("network setting `{name}` must be at least 1")]
+    Zero {
+        /// The setting.
+        name: &'static str,
+    },
+    /// The reconstruction level is deeper than the pyramid.
+    #[error("reconstruction level {recon_level} is deeper than the {levels} pyramid levels")]
+    ReconLevel {
+        /// Given level.
+        recon_level: usize,
+        /// Levels.
+        levels: usize,
+    },
+    /// A candle error while building or running the network.
+    #[error(transparent)]
+    Candle(#[from] candle_core::Error),
+}
+
+impl Config {
+    /// Checks that the network can be built.
+    pub fn validate(&self) -> Result<(), ModelError> {
+        for (name, v) in [
+            ("latent", self.latent),
+            ("action_dims", self.action_dims),
+            ("levels", self.levels),
+            ("hidden", self.hidden),
+            ("head_hidden", self.head_hidden),
+            ("heads", self.heads),
+        ] {
+            if v == 0 {
+                return Err(ModelError::Zero { name });
+            }
+        }
+        if self.widths.len() != self.levels {
+            return Err(ModelError::Widths {
+                widths: self.widths.len(),
+                levels: self.levels,
+            });
+        }
+        if self.widths.contains(&0) {
+            return Err(ModelError::Zero { name: "widths" });
+        }
+        let factor = 1usize << self.levels.min(16);
+        if self.width == 0 || self.height == 0 || self.width % factor != 0 || self.height % factor != 0 {
+            return Err(ModelError::FrameSize {
+                width: self.width,
+                height: self.height,
+                levels: self.levels,
+                factor,
+            });
+        }
+        if self.recon_level > self.levels {
+            return Err(ModelError::ReconLevel {
+                recon_level: self.recon_level,
+                levels: self.levels,
+            });
+        }
+        Ok(())
+    }
+
+    /// Size `(H / 2^L, W / 2^L)` of the deepest feature map.
+    pub fn deepest_size(&self) -> (usize, usize) {
+        (self.height >> self.levels, self.width >> self.levels)
+    }
+
+    /// Size `(H / 2^r, W / 2^r)` of the reconstructed frame.
+    pub fn recon_size(&self) -> (usize, usize) {
+        (self.height >> self.recon_level, self.width >> self.recon_level)
+    }
+}
+
+#[cfg(test)]
+mod tests;

@@ -108,7 +108,8 @@ impl<'a> Problems<'a> {
     }
 
     /// Turns the collected problems into an error when there are any.
-    pub fn finish(self, path: &Path) -> Result<(), SpecError> {
+    pub fn finish(mut self, path: &Path) -> Result<(), SpecError> {
+        self.list.sort_by_key(|p| (p.line == 0, p.line, p.column));
         if self.list.is_empty() {
             Ok(())
         } else {

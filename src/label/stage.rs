@@ -1,0 +1,576 @@
+//! The label stage's two passes.
+//!
+//! 1. Fit (skipped when `state.json` has the stage key): infer every
+//!    transition of the `calib` and `holdout` clips and a seeded sample of the
+//!    train transitions (every unlabelled clip is train); fit the per-dimension
+//!    conformal quantiles, the confidence map and the ood threshold on calib,
+//!    measure them on holdout, fit k-means on the sampled posterior means.
+//! 2. Label: every clip in (set, id) order, resuming at the first clip whose
+//!    labels file is missing or was made under another key; then the codes
+//!    table and the calibration figures.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+
+use super::conformal::{self, ConformalQuantile};
+use super::kmeans::{KMeans, KMeansSettings};
+use super::model::{FitOutputs, FramePrep, Split, Standardisation, TransitionModel};
+use super::output::{
+    CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodeRow, CodesTable, DimCalibration,
+    LabelState, STATE_FILE, decoded_clips,
+};
+use super::reliability::{self, Isotonic, METHOD};
+use super::stats::{normal_quantile, prob_within};
+use super::{LabelError, LabelOptions, RELIABILITY_BINS};
+use crate::model::Rng;
+use crate::store::{ClipRecord, FrameReader};
+
+/// One transition's model outputs in action units.
+#[derive(Debug, Clone)]
+pub struct RawTransition {
+    /// Ensemble mean per dimension.
+    pub est: Vec<f64>,
+    /// sqrt(aleatoric + epistemic variance) per dimension, before calibration.
+    pub std: Vec<f64>,
+    /// RMS over dimensions of the heads' spread, standardised units.
+    pub disagreement: f64,
+    /// Posterior mean.
+    pub latent: Vec<f64>,
+}
+
+/// Settings of one label run, independent of the runner.
+pub struct LabelJob<'a> {
+    /// The run folder (reads `decode/`).
+    pub run_dir: &'a Path,
+    /// Where outputs go (`RUN/label/`).
+    pub label_dir: &'a Path,
+    /// Stage key stamped on every output.
+    pub key: &'a str,
+    /// Settings.
+    pub opts: &'a LabelOptions,
+    /// Spec seed.
+    pub seed: u64,
+    /// Worker threads.
+    pub threads: usize,
+}
+
+/// Confidence and ood figures of one clip set.
+#[derive(Debug, Clone, Default, Serialize, serde::Deserialize, PartialEq)]
+pub struct SetSummary {
+    /// Clips.
+    pub clips: u64,
+    /// Transitions.
+    pub transitions: u64,
+    /// Mean confidence.
+    pub mean_confidence: f64,
+    /// Fraction flagged ood.
+    pub ood_rate: f64,
+}
+
+/// What a label run did.
+#[derive(Debug, Clone, Serialize)]
+pub struct LabelSummary {
+    /// Clips labelled now.
+    pub clips_labelled: u64,
+    /// Clips whose labels were reused.
+    pub clips_reused: u64,
+    /// Transitions in all.
+    pub transitions: u64,
+    /// Transitions inferred now (including the fit pass).
+    pub transitions_inferred: u64,
+    /// Whether the fitted state was reused.
+    pub state_reused: bool,
+    /// Per set.
+    pub sets: BTreeMap<String, SetSummary>,
+    /// The calibration figures.
+    pub calibration: CalibrationFigures,
+    /// Codes used (count > 0) out of k.
+    pub codes_used: u64,
+    /// Seconds in the fit pass and in the label pass.
+    pub seconds: (f64, f64),
+}
+
+fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> LabelError + '_ {
+    move |source| LabelError::Io {
+        path: path.to_path_buf(),
+        source,
+    }
+}
+
+struct Clip {
+    rec: ClipRecord,
+    split: Split,
+}
+
+impl Clip {
+    fn transitions(&self) -> usize {
+        self.rec.frames.saturating_sub(1) as usize
+    }
+    fn frames_path(&self, run_dir: &Path) -> PathBuf {
+        ClipRecord::frames_path(&run_dir.join("decode"), &self.rec.set, &self.rec.id)
+    }
+}
+
+/// Runs the label stage with the given fit outputs and frame preparation.
+pub fn label_run(job: &LabelJob<'_>, fit: &FitOutputs, prep: &dyn FramePrep) -> Result<LabelSummary, LabelError> {
+    let decode_dir = job.run_dir.join("decode");
+    let records = decoded_clips(job.run_dir).map_err(io_at(&decode_dir))?;
+    let clips: Vec<Clip> = records
+        .into_iter()
+        .map(|rec| {
+            let split = if rec.labelled {
+                *fit.splits.get(&(rec.set.clone(), rec.id.clone())).unwrap_or(&Split::Train)
+            } else {
+                Split::Train
+            };
+            Clip { rec, split }
+        })
+        .collect();
+    let pool = crate::util::thread_pool(job.threads);
+    pool.install(|| run_passes(job, fit.model.as_ref(), prep, &clips))
+}
+
+fn run_passes(
+    job: &LabelJob<'_>,
+    model: &dyn TransitionModel,
+    prep: &dyn FramePrep,
+    clips: &[Clip],
+) -> Result<LabelSummary, LabelError> {
+    let started = std::time::Instant::now();
+    let state_path = job.label_dir.join(STATE_FILE);
+    let mut inferred = 0u64;
+    let existing: Option<LabelState> = crate::store::read_json(&state_path).ok();
+    let (state, state_reused) = match existing.filter(|s| s.key == job.key) {
+        Some(s) => (s, true),
+        None => {
+            let (s, n) = fit_state(job, model, prep, clips)?;
+            inferred += n;
+            crate::store::write_json_atomic(&state_path, &s).map_err(io_at(&state_path))?;
+            (s, false)
+        }
+    };
+    let fit_seconds = started.elapsed().as_secs_f64();
+    let started = std::time::Instant::now();
+    let std = &state.calibration.standardisation;
+    let a = std.dims.len();
+    let k = state.kmeans.k();
+    let mut count = vec![0u64; k];
+    let mut count_labelled = vec![0u64; k];
+    let mut sum_action = vec![vec![0.0f64; a]; k];
+    let mut sets: BTreeMap<String, SetSummary> = BTreeMap::new();
+    let (mut labelled_now, mut reused, mut transitions) = (0u64, 0u64, 0u64);
+    for clip in clips {
+        let path = ClipLabels::path(job.label_dir, &clip.rec.set, &clip.rec.id);
+        let old: Option<ClipLabels> = crate::store::read_json(&path).ok();
+        let labels = match old.filter(|l| l.key == job.key && l.frames == clip.rec.frames) {
+            Some(l) => {
+                reused += 1;
+                l
+            }
+            None => {
+                let all: Vec<usize> = (0..clip.transitions()).collect();
+                let raw = infer_clip(job, model, prep, clip, &all)?;
+                inferred += raw.len() as u64;
+                let l = finish_clip(job, clip, &state, &raw);
+                crate::store::write_json_atomic(&path, &l).map_err(io_at(&path))?;
+                labelled_now += 1;
+                l
+            }
+        };
+        let s = sets.entry(clip.rec.set.clone()).or_default();
+        s.clips += 1;
+        for i in 0..labels.code.len() {
+            let c = labels.code[i] as usize;
+            count[c] += 1;
+            if clip.rec.labelled {
+                count_labelled[c] += 1;
+            }
+            for (acc, v) in sum_action[c].iter_mut().zip(&labels.action_est[i]) {
+                *acc += *v as f64;
+            }
+            s.transitions += 1;
+            s.mean_confidence += labels.confidence[i] as f64;
+            s.ood_rate += if labels.ood[i] { 1.0 } else { 0.0 };
+        }
+        transitions += labels.code.len() as u64;
+    }
+    for s in sets.values_mut() {
+        let n = (s.transitions as f64).max(1.0);
+        s.mean_confidence /= n;
+        s.ood_rate /= n;
+    }
+    let table = CodesTable {
+        dims: std.dims.clone(),
+        latent_dims: state.kmeans.dim,
+        inertia: state.kmeans.inertia,
+        fitted_points: state.kmeans_points,
+        codes: (0..k)
+            .map(|c| CodeRow {
+                code: c as u16,
+                centroid: state.kmeans.centroids[c].clone(),
+                count: count[c],
+                count_labelled: count_labelled[c],
+                mean_action: if count[c] > 0 {
+                    sum_action[c].iter().map(|s| s / count[c] as f64).collect()
+                } else {
+                    Vec::new()
+                },
+            })
+            .collect(),
+    };
+    let codes_path = job.label_dir.join(CODES_FILE);
+    crate::store::write_json_atomic(&codes_path, &table).map_err(io_at(&codes_path))?;
+    let cal_path = job.label_dir.join(CALIBRATION_FILE);
+    crate::store::write_json_atomic(&cal_path, &state.calibration).map_err(io_at(&cal_path))?;
+    Ok(LabelSummary {
+        clips_labelled: labelled_now,
+        clips_reused: reused,
+        transitions,
+        transitions_inferred: inferred,
+        state_reused,
+        sets,
+        calibration: state.calibration.clone(),
+        codes_used: count.iter().filter(|c| **c > 0).count() as u64,
+        seconds: (fit_seconds, started.elapsed().as_secs_f64()),
+    })
+}
+
+/// Infers transitions `which` of `clip` in batches.
+fn infer_clip(
+    job: &LabelJob<'_>,
+    model: &dyn TransitionModel,
+    prep: &dyn FramePrep,
+    clip: &Clip,
+    which: &[usize],
+) -> Result<Vec<RawTransition>, LabelError> {
+    if which.is_empty() {
+        return Ok(Vec::new());
+    }
+    let frames = FrameReader::open(&clip.frames_path(job.run_dir))?;
+    if frames.len() != clip.rec.frames as usize {
+        return Err(LabelError::FrameCount {
+            path: frames.path().to_path_buf(),
+            record: clip.rec.frames,
+            store: frames.len(),
+        });
+    }
+    let mut out = Vec::with_capacity(which.len());
+    for chunk in which.chunks(job.opts.batch.max(1) as usize) {
+        let prepared: Vec<_> = chunk
+            .iter()
+            .map(|&t| {
+                (
+                    prep.prepare(&clip.rec, t, frames.frame(t)),
+                    prep.prepare(&clip.rec, t + 1, frames.frame(t + 1)),
+                )
+            })
+            .collect();
+        let pairs: Vec<(&[u8], &[u8])> = prepared.iter().map(|(x, y)| (&x[..], &y[..])).collect();
+        let batch = model.infer(&pairs).map_err(|source| LabelError::Model {
+            set: clip.rec.set.clone(),
+            id: clip.rec.id.clone(),
+            first_transition: chunk[0],
+            source,
+        })?;
+        out.extend(raw_transitions(model, &batch, chunk.len()).map_err(|reason| LabelError::ModelOutput {
+            set: clip.rec.set.clone(),
+            id: clip.rec.id.clone(),
+            reason,
+        })?);
+    }
+    Ok(out)
+}
+
+/// Turns a model batch (standardised units) into action-unit estimates.
+pub fn raw_transitions(
+    model: &dyn TransitionModel,
+    batch: &super::model::TransitionBatch,
+    b: usize,
+) -> Result<Vec<RawTransition>, String> {
+    let st = model.standardisation();
+    let (a, m, k) = (st.dims.len(), model.heads(), model.latent_dims());
+    if batch.latent.len() != b * k || batch.head_mean.len() != b * m * a || batch.head_logvar.len() != b * m * a {
+        return Err(format!(
+            "batch of {b}: got {} latent, {} head mean and {} head log-variance values, expected {}, {} and {}",
+            batch.latent.len(),
+            batch.head_mean.len(),
+            batch.head_logvar.len(),
+            b * k,
+            b * m * a,
+            b * m * a
+        ));
+    }
+    Ok((0..b)
+        .map(|i| {
+            let mut est = vec![0.0; a];
+            let mut std = vec![0.0; a];
+            let mut dis = 0.0;
+            for d in 0..a {
+                let (sd, mu) = (st.std[d], st.mean[d]);
+                let heads = (0..m).map(|h| (i * m + h) * a + d);
+                let means: Vec<f64> = heads.clone().map(|j| batch.head_mean[j] as f64).collect();
+                let mean_s = means.iter().sum::<f64>() / m as f64;
+                let alea_s = heads.map(|j| (batch.head_logvar[j] as f64).exp()).sum::<f64>() / m as f64;
+                let epi_s = means.iter().map(|x| (x - mean_s) * (x - mean_s)).sum::<f64>() / m as f64;
+                est[d] = mean_s * sd + mu;
+                std[d] = ((alea_s + epi_s) * sd * sd).sqrt();
+                dis += epi_s;
+            }
+            RawTransition {
+                est,
+                std,
+                disagreement: (dis / a.max(1) as f64).sqrt(),
+                latent: batch.latent[i * k..(i + 1) * k].iter().map(|v| *v as f64).collect(),
+            }
+        })
+        .collect())
+}
+
+/// The final labels of one transition under a fitted state.
+struct Final {
+    est: Vec<f64>,
+    std: Vec<f64>,
+    raw_conf: f64,
+    confidence: f64,
+    ood: bool,
+}
+
+fn finalise(raw: &RawTransition, cal: &CalibrationFigures, q: &[f64], iso: &Isotonic) -> Final {
+    let std: Vec<f64> = raw.std.iter().zip(q).map(|(s, q)| q * s / cal.z).collect();
+    let raw_conf: f64 = std
+        .iter()
+        .zip(&cal.dims)
+        .map(|(s, d)| prob_within(d.tolerance, *s))
+        .product();
+    Final {
+        est: raw.est.clone(),
+        std,
+        raw_conf,
+        confidence: iso.apply(raw_conf),
+        ood: raw.disagreement > cal.ood_threshold,
+    }
+}
+
+fn finish_clip(job: &LabelJob<'_>, clip: &Clip, state: &LabelState, raw: &[RawTransition]) -> ClipLabels {
+    let q: Vec<f64> = state.calibration.dims.iter().map(|d| d.quantile.q).collect();
+    let mut l = ClipLabels {
+        id: clip.rec.id.clone(),
+        set: clip.rec.set.clone(),
+        labelled: clip.rec.labelled,
+        split: clip.split,
+        key: job.key.to_string(),
+        frames: clip.rec.frames,
+        action_est: Vec::with_capacity(raw.len()),
+        action_std: Vec::with_capacity(raw.len()),
+        confidence: Vec::with_capacity(raw.len()),
+        ood: Vec::with_capacity(raw.len()),
+        code: Vec::with_capacity(raw.len()),
+        disagreement: Vec::with_capacity(raw.len()),
+    };
+    for r in raw {
+        let f = finalise(r, &state.calibration, &q, &state.isotonic);
+        l.action_est.push(f.est.iter().map(|v| *v as f32).collect());
+        l.action_std.push(f.std.iter().map(|v| *v as f32).collect());
+        l.confidence.push(f.confidence as f32);
+        l.ood.push(f.ood);
+        l.code.push(state.kmeans.nearest(&r.latent).0 as u16);
+        l.disagreement.push(r.disagreement as f32);
+    }
+    l
+}
+
+fn actions_of<'c>(clip: &'c Clip) -> Result<&'c [Vec<f32>], LabelError> {
+    match &clip.rec.actions {
+        Some(a) if a.len() == clip.transitions() => Ok(a),
+        other => Err(LabelError::MissingActions {
+            set: clip.rec.set.clone(),
+            id: clip.rec.id.clone(),
+            rows: other.as_ref().map_or(0, |a| a.len()),
+            transitions: clip.transitions(),
+        }),
+    }
+}
+
+/// Raw outputs and recorded actions of every transition of `split` clips.
+fn labelled_split(
+    job: &LabelJob<'_>,
+    model: &dyn TransitionModel,
+    prep: &dyn FramePrep,
+    clips: &[Clip],
+    split: Split,
+) -> Result<Vec<(RawTransition, Vec<f64>)>, LabelError> {
+    let mut out = Vec::new();
+    for clip in clips.iter().filter(|c| c.rec.labelled && c.split == split) {
+        let actions = actions_of(clip)?;
+        let all: Vec<usize> = (0..clip.transitions()).collect();
+        let raw = infer_clip(job, model, prep, clip, &all)?;
+        out.extend(
+            raw.into_iter()
+                .zip(actions)
+                .map(|(r, a)| (r, a.iter().map(|v| *v as f64).collect())),
+        );
+    }
+    Ok(out)
+}
+
+/// Fits quantiles, the confidence map, the ood threshold and the codes.
+fn fit_state(
+    job: &LabelJob<'_>,
+    model: &dyn TransitionModel,
+    prep: &dyn FramePrep,
+    clips: &[Clip],
+) -> Result<(LabelState, u64), LabelError> {
+    let opts = job.opts;
+    let st: Standardisation = model.standardisation().clone();
+    let a = st.dims.len();
+    let calib = labelled_split(job, model, prep, clips, Split::Calib)?;
+    let needed = conformal::min_points(opts.alpha);
+    if calib.len() < needed {
+        return Err(LabelError::TooFewCalib {
+            transitions: calib.len(),
+            needed,
+            alpha: opts.alpha,
+        });
+    }
+    let holdout = labelled_split(job, model, prep, clips, Split::Holdout)?;
+    let z = normal_quantile(1.0 - opts.alpha / 2.0);
+    let quantiles: Vec<ConformalQuantile> = (0..a)
+        .map(|d| {
+            let scores: Vec<f64> = calib
+                .iter()
+                .map(|(r, act)| conformal::score(act[d], r.est[d], r.std[d]))
+                .collect();
+            conformal::quantile(&scores, opts.alpha)
+        })
+        .collect();
+    let tolerance: Vec<f64> = st.std.iter().map(|s| opts.tolerance * s).collect();
+    let mut cal = CalibrationFigures {
+        alpha: opts.alpha,
+        z,
+        tolerance_fraction: opts.tolerance,
+        standardisation: st.clone(),
+        dims: (0..a)
+            .map(|d| DimCalibration {
+                dim: st.dims[d].clone(),
+                quantile: quantiles[d].clone(),
+                tolerance: tolerance[d],
+                holdout_coverage: None,
+                calib_coverage: 0.0,
+                holdout_mean_std: None,
+            })
+            .collect(),
+        calib_transitions: calib.len() as u64,
+        holdout_transitions: holdout.len() as u64,
+        confidence_method: METHOD.to_string(),
+        holdout_reliability: Default::default(),
+        holdout_reliability_raw: Default::default(),
+        ood_threshold: calib.iter().map(|(r, _)| r.disagreement).fold(0.0, f64::max),
+        holdout_ood_rate: None,
+    };
+    let q: Vec<f64> = quantiles.iter().map(|x| x.q).collect();
+    let within = |f: &Final, act: &[f64]| (0..a).all(|d| (act[d] - f.est[d]).abs() <= tolerance[d]);
+    let covered = |f: &Final, act: &[f64], d: usize| (act[d] - f.est[d]).abs() <= z * f.std[d] * (1.0 + 1e-12);
+    // Confidence map on calib.
+    let identity = Isotonic::default();
+    let calib_final: Vec<Final> = calib.iter().map(|(r, _)| finalise(r, &cal, &q, &identity)).collect();
+    let calib_hits: Vec<bool> = calib_final.iter().zip(&calib).map(|(f, (_, act))| within(f, act)).collect();
+    let iso = Isotonic::fit(&calib_final.iter().map(|f| f.raw_conf).collect::<Vec<_>>(), &calib_hits);
+    for d in 0..a {
+        let c = calib_final.iter().zip(&calib).filter(|(f, (_, act))| covered(f, act, d)).count();
+        cal.dims[d].calib_coverage = c as f64 / calib.len() as f64;
+    }
+    // Holdout figures.
+    if !holdout.is_empty() {
+        let n = holdout.len() as f64;
+        let fin: Vec<Final> = holdout.iter().map(|(r, _)| finalise(r, &cal, &q, &iso)).collect();
+        let hits: Vec<bool> = fin.iter().zip(&holdout).map(|(f, (_, act))| within(f, act)).collect();
+        for d in 0..a {
+            let c = fin.iter().zip(&holdout).filter(|(f, (_, act))| covered(f, act, d)).count();
+            cal.dims[d].holdout_coverage = Some(c as f64 / n);
+            cal.dims[d].holdout_mean_std = Some(fin.iter().map(|f| f.std[d]).sum::<f64>() / n);
+        }
+        let conf: Vec<f64> = fin.iter().map(|f| f.confidence).collect();
+        let raw_conf: Vec<f64> = fin.iter().map(|f| f.raw_conf).collect();
+        cal.holdout_reliability = reliability::reliability(&conf, &hits, RELIABILITY_BINS);
+        cal.holdout_reliability_raw = reliability::reliability(&raw_conf, &hits, RELIABILITY_BINS);
+        cal.holdout_ood_rate = Some(fin.iter().filter(|f| f.ood).count() as f64 / n);
+    }
+    // Codes on a seeded sample of train transitions.
+    let train: Vec<&Clip> = clips.iter().filter(|c| c.split == Split::Train).collect();
+    let total: u64 = train.iter().map(|c| c.transitions() as u64).sum();
+    let sample = sample_indices(total, opts.kmeans_sample as u64, job.seed);
+    let mut latents = Vec::with_capacity(sample.len() * model.latent_dims());
+    let mut offset = 0u64;
+    let mut it = sample.iter().peekable();
+    for clip in &train {
+        let n = clip.transitions() as u64;
+        let mut which = Vec::new();
+        while let Some(&&g) = it.peek() {
+            if g >= offset + n {
+                break;
+            }
+            which.push((g - offset) as usize);
+            it.next();
+        }
+        offset += n;
+        for r in infer_clip(job, model, prep, clip, &which)? {
+            latents.extend(r.latent);
+        }
+    }
+    let kmeans = KMeans::fit(
+        &latents,
+        model.latent_dims(),
+        KMeansSettings {
+            k: opts.codes as usize,
+            restarts: opts.kmeans_restarts as usize,
+            max_iterations: opts.kmeans_iterations as usize,
+            seed: job.seed,
+        },
+    )?;
+    let inferred = (calib.len() + holdout.len() + sample.len()) as u64;
+    Ok((
+        LabelState {
+            key: job.key.to_string(),
+            calibration: cal,
+            isotonic: iso,
+            kmeans,
+            kmeans_points: sample.len() as u64,
+            train_transitions: total,
+        },
+        inferred,
+    ))
+}
+
+/// `min(m, n)` distinct indices of `0..n`, sorted: all of them when `n <= m`,
+/// else a seeded uniform sample (Floyd's algorithm).
+pub fn sample_indices(n: u64, m: u64, seed: u64) -> Vec<u64> {
+    if n <= m {
+        return (0..n).collect();
+    }
+    let mut rng = Rng::for_name(seed, "label.kmeans.sample");
+    let mut chosen = BTreeSet::new();
+    for j in (n - m)..n {
+        let t = rng.below(j + 1);
+        if !chosen.insert(t) {
+            chosen.insert(j);
+        }
+    }
+    chosen.into_iter().collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sample_is_distinct_sorted_and_seeded() {
+        let s = sample_indices(1000, 100, 3);
+        assert_eq!(s.len(), 100);
+        assert!(s.windows(2).all(|w| w[0] < w[1]));
+        assert_eq!(s, sample_indices(1000, 100, 3));
+        assert_ne!(s, sample_indices(1000, 100, 4));
+        assert_eq!(sample_indices(5, 100, 3), vec![0, 1, 2, 3, 4]);
+    }
+}

@@ -1,0 +1,447 @@
+//! The variational inverse-dynamics network and its training loss.
+//!
+//! Shapes (`B` batch, `H x W` frame size, `L` = `cfg.levels`, `c_i` =
+//! `cfg.widths[i-1]`, `k` = `cfg.latent`, `A` = `cfg.action_dims`, `M` =
+//! `cfg.heads`, `r` = `cfg.recon_level`); frames are channels-last in [0, 1]:
+//!
+//! ```text
+//! x_t, x_t1            [B, H, W, 3]
+//! encoder  (frame t)   level i: f_i = relu(Dense(s2d(f_{i-1})))   [B, H/2^i, W/2^i, c_i]
+//!                      h = relu(Dense(flatten(f_L)))               [B, hidden]
+//! posterior q(z|t,t+1) same pyramid on [x_t, x_t1, x_t1 - x_t]     [B, H, W, 9]
+//!                      mu, lv = Dense(g), Dense(g)                 [B, k] each
+//! prior p(z)           N(0, I)
+//! z = mu + exp(lv/2) * eps,  eps ~ N(0, I) given by the caller     [B, k]
+//! decoder p(x_t1|x_t,z) u_L = relu(Dense([h, z]))  reshaped         [B, H/2^L, W/2^L, c_L]
+//!                      level j = L..r: u_j = relu(Dense([u_j, f_j]) + Dense_z(z))
+//!                                      u_{j-1} = d2s(Dense(u_j))  (for j > r)
+//!                      x̂_t1 = pool^r(x_t) + Dense_0(u_r)   (zero-initialised residual)
+//!                                                                  [B, H/2^r, W/2^r, 3]
+//! heads m = 0..M-1     (mean_m, lv_m) = Dense(relu(Dense(mu)))     [B, A] each
+//! ```
+//!
+//! `f_0` is `x_t` itself; `pool^r` is `r` rounds of 2x2 average pooling, and
+//! the reconstruction target is `pool^r(x_t1)` (the default `r = 1` predicts
+//! the next frame at half resolution, which is what makes the decoder cheap).
+//!
+//! Loss per batch (minimised; the first `n_l` rows are labelled transitions,
+//! the rest unlabelled):
+//!
+//! ```text
+//! recon_i  = 0.5 D (ln 2pi + ln s2) + 0.5 |x̂_t1,i - pool^r(x_t1,i)|^2 / s2       (D values)
+//! kl_i     = KL(q(z|t,t+1) || N(0, I))                       (Kingma & Welling 2014, app. B)
+//! action   = (1/M) sum_m (1/n_l) sum_{i<n_l} w_mi sum_a nll(a_ia; mean_mia, lv_mia)
+//! align    = MMD2_u(mu[..n_l], mu[n_l..])                    (Gretton et al. 2012, eq. 3)
+//! total    = mean_i(recon_i + kl_i) + action_weight * action + align_weight * align
+//! ```
+//!
+//! `mean_i(recon_i + kl_i)` is the negative ELBO per transition; with the
+//! shared variance at its optimum (the MSE) the reconstruction/KL balance
+//! needs no hand-set weight. `w_mi` are the integer bootstrap counts of
+//! labelled transition `i` in head `m`'s resample (chosen by the caller), so
+//! each head sees its own bootstrap resample. The action heads read the
+//! posterior mean, the same input they get at inference time; their gradient
+//! also shapes the posterior (that is what ties `z` to the robot's actions).
+
+use candle_core::{D, Module, Result, Tensor};
+use candle_nn::VarBuilder;
+
+use super::layers::{Dense, avg_pool2, depth_to_space, space_to_depth};
+use super::losses::{
+    Bandwidth, SharedVariance, gaussian_nll, kl_std_normal, mmd2_unbiased, shared_variance_nll,
+};
+use super::{Config, ModelError};
+
+/// Bounds for the action heads' log-variance (keeps `exp(-lv)` finite).
+pub const HEAD_LOGVAR_RANGE: (f64, f64) = (-12.0, 8.0);
+/// Bounds for the posterior's log-variance.
+pub const POSTERIOR_LOGVAR_RANGE: (f64, f64) = (-16.0, 8.0);
+
+/// A pyramid of space-to-depth + dense layers ending in a flat feature vector.
+#[derive(Debug, Clone)]
+struct Pyramid {
+    levels: Vec<Dense>,
+    fc: Dense,
+}
+
+impl Pyramid {
+    fn new(cfg: &Config, in_channels: usize, vb: VarBuilder) -> Result<Self> {
+        let mut levels = Vec::with_capacity(cfg.levels);
+        let mut c = in_channels;
+        for i in 0..cfg.levels {
+            let out = cfg.widths[i];
+            levels.push(Dense::new(4 * c, out, vb.pp(format!("level{}", i + 1)))?);
+            c = out;
+        }
+        let (hl, wl) = cfg.deepest_size();
+        let fc = Dense::new(hl * wl * c, cfg.hidden, vb.pp("fc"))?;
+        Ok(Self { levels, fc })
+    }
+
+    /// Returns the feature maps `f_1..f_L` and the flat features `[B, hidden]`.
+    fn forward(&self, x: &Tensor) -> Result<(Vec<Tensor>, Tensor)> {
+        let mut feats = Vec::with_capacity(self.levels.len());
+        let mut f = x.clone();
+        for layer in &self.levels {
+            f = layer.forward(&space_to_depth(&f)?)?.relu()?;
+            feats.push(f.clone());
+        }
+        let b = x.dim(0)?;
+        let h = self.fc.forward(&f.reshape((b, ()))?)?.relu()?;
+        Ok((feats, h))
+    }
+}
+
+/// The frame encoder: features of frame t for the decoder.
+#[derive(Debug, Clone)]
+pub struct FrameEncoder {
+    pyramid: Pyramid,
+}
+
+/// The posterior network q(z | frame t, frame t+1).
+#[derive(Debug, Clone)]
+pub struct Posterior {
+    pyramid: Pyramid,
+    mu: Dense,
+    logvar: Dense,
+}
+
+impl Posterior {
+    /// `(mu, logvar)`, each `[B, latent]`, from frames `[B, H, W, 3]` in [0, 1].
+    pub fn forward(&self, x_t: &Tensor, x_t1: &Tensor) -> Result<(Tensor, Tensor)> {
+        let diff = (x_t1 - x_t)?;
+        let input = Tensor::cat(&[x_t, x_t1, &diff], 3)?;
+        let (_, g) = self.pyramid.forward(&input)?;
+        let mu = self.mu.forward(&g)?;
+        let (lo, hi) = POSTERIOR_LOGVAR_RANGE;
+        let lv = self.logvar.forward(&g)?.clamp(lo, hi)?;
+        Ok((mu, lv))
+    }
+}
+
+/// The forward decoder p(frame t+1 | frame t, z).
+#[derive(Debug, Clone)]
+pub struct Decoder {
+    top: Dense,
+    /// Per level, from deepest (`L`) to `r`: merge, latent projection, and
+    /// (except at `r`) the upsampling layer.
+    merge: Vec<Dense>,
+    from_z: Vec<Dense>,
+    up: Vec<Dense>,
+    out: Dense,
+    log_var: Option<Tensor>,
+}
+
+/// One action head: `z -> (mean, logvar)` in standardised action units.
+#[derive(Debug, Clone)]
+pub struct ActionHead {
+    fc1: Dense,
+    fc2: Dense,
+    dims: usize,
+}
+
+impl ActionHead {
+    /// `(mean, logvar)`, each `[B, A]`, from posterior means `[B, latent]`.
+    pub fn forward(&self, z: &Tensor) -> Result<(Tensor, Tensor)> {
+        let out = self.fc2.forward(&self.fc1.forward(z)?.relu()?)?;
+        let mean = out.narrow(D::Minus1, 0, self.dims)?;
+        let (lo, hi) = HEAD_LOGVAR_RANGE;
+        let lv = out.narrow(D::Minus1, self.dims, self.dims)?.clamp(lo, hi)?;
+        Ok((mean, lv))
+    }
+}
+
+/// The whole model. Parameter names (safetensors keys) start with
+/// `encoder.`, `posterior.`, `decoder.` and `heads.<m>.`.
+#[derive(Debug, Clone)]
+pub struct Net {
+    cfg: Config,
+    encoder: FrameEncoder,
+    posterior: Posterior,
+    decoder: Decoder,
+    heads: Vec<ActionHead>,
+}
+
+/// One training batch. Rows `0..n_labelled` are labelled transitions, the
+/// rest unlabelled.
+#[derive(Debug, Clone)]
+pub struct Batch {
+    /// Frame t, `[B, H, W, 3]` in [0, 1].
+    pub x_t: Tensor,
+    /// Frame t+1, `[B, H, W, 3]` in [0, 1].
+    pub x_t1: Tensor,
+    /// How many leading rows are labelled.
+    pub n_labelled: usize,
+    /// Standardised actions of the labelled rows, `[n_labelled, A]`.
+    pub actions: Option<Tensor>,
+    /// Bootstrap counts `[M, n_labelled]` (all ones when `None`).
+    pub boot: Option<Tensor>,
+    /// Reparameterisation noise `[B, latent]`, standard normal.
+    pub eps: Tensor,
+}
+
+/// Weights and options of the loss terms (training settings, not network shape).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct LossOptions {
+    /// Weight of the action NLL.
+    pub action_weight: f64,
+    /// Weight of the MMD^2 alignment penalty (0 turns it off).
+    pub align_weight: f64,
+    /// MMD kernel bandwidth.
+    pub bandwidth: Bandwidth,
+}
+
+impl Default for LossOptions {
+    fn default() -> Self {
+        Self {
+            action_weight: super::DEFAULT_ACTION_WEIGHT,
+            align_weight: super::DEFAULT_ALIGN_WEIGHT,
+            bandwidth: Bandwidth::Median,
+        }
+    }
+}
+
+/// The loss and its parts, each a scalar tensor (all part of the graph).
+#[derive(Debug, Clone)]
+pub struct LossParts {
+    /// What is minimised.
+    pub total: Tensor,
+    /// Mean reconstruction NLL per transition (nats).
+    pub recon: Tensor,
+    /// Mean KL per transition (nats).
+    pub kl: Tensor,
+    /// Mean bootstrap-weighted action NLL over heads (0 without labelled rows).
+    pub action: Tensor,
+    /// MMD^2 between labelled and unlabelled posterior means (0 when off).
+    pub align: Tensor,
+    /// The decoder's shared variance `s2`.
+    pub variance: Tensor,
+    /// Kernel bandwidth used for the alignment term (NaN when off).
+    pub sigma: f64,
+}
+
+impl Net {
+    /// Builds the network, creating or fetching its parameters through `vb`.
+    pub fn new(cfg: &Config, vb: VarBuilder) -> std::result::Result<Self, ModelError> {
+        cfg.validate()?;
+        let encoder = FrameEncoder {
+            pyramid: Pyramid::new(cfg, 3, vb.pp("encoder"))?,
+        };
+        let pvb = vb.pp("posterior");
+        let posterior = Posterior {
+            pyramid: Pyramid::new(cfg, 9, pvb.pp("pyramid"))?,
+            mu: Dense::new(cfg.hidden, cfg.latent, pvb.pp("mu"))?,
+            logvar: Dense::new(cfg.hidden, cfg.latent, pvb.pp("logvar"))?,
+        };
+        let decoder = Self::build_decoder(cfg, vb.pp("decoder"))?;
+        let heads = (0..cfg.heads)
+            .map(|m| {
+                let hvb = vb.pp("heads").pp(m);
+                Ok(ActionHead {
+                    fc1: Dense::new(cfg.latent, cfg.head_hidden, hvb.pp("fc1"))?,
+                    fc2: Dense::new(cfg.head_hidden, 2 * cfg.action_dims, hvb.pp("fc2"))?,
+                    dims: cfg.action_dims,
+                })
+            })
+            .collect::<Result<Vec<_>>>()?;
+        Ok(Self {
+            cfg: cfg.clone(),
+            encoder,
+            posterior,
+            decoder,
+            heads,
+        })
+    }
+
+    fn build_decoder(cfg: &Config, vb: VarBuilder) -> Result<Decoder> {
+        let l = cfg.levels;
+        let r = cfg.recon_level;
+        let (hl, wl) = cfg.deepest_size();
+        let top = Dense::new(cfg.hidden + cfg.latent, hl * wl * cfg.widths[l - 1], vb.pp("top"))?;
+        // Channels of f_j (f_0 = the RGB frame) and of u_j (u_0 takes c_1).
+        let feat_c = |j: usize| if j == 0 { 3 } else { cfg.widths[j - 1] };
+        let u_c = |j: usize| cfg.widths[j.max(1) - 1];
+        let (mut merge, mut from_z, mut up) = (Vec::new(), Vec::new(), Vec::new());
+        for j in (r..=l).rev() {
+            merge.push(Dense::new(u_c(j) + feat_c(j), u_c(j), vb.pp(format!("merge{j}")))?);
+            from_z.push(Dense::new(cfg.latent, u_c(j), vb.pp(format!("z{j}")))?);
+            if j > r {
+                up.push(Dense::new(u_c(j), 4 * u_c(j - 1), vb.pp(format!("up{j}")))?);
+            }
+        }
+        let out = Dense::zeros(u_c(r), 3, vb.pp("out"))?;
+        let log_var = match cfg.variance {
+            SharedVariance::Learned => Some(vb.get_with_hints(
+                1,
+                "log_var",
+                candle_nn::Init::Const(super::INITIAL_LOG_VARIANCE),
+            )?),
+            SharedVariance::ClosedForm => None,
+        };
+        Ok(Decoder {
+            top,
+            merge,
+            from_z,
+            up,
+            out,
+            log_var,
+        })
+    }
+
+    /// The configuration the network was built with.
+    pub fn config(&self) -> &Config {
+        &self.cfg
+    }
+
+    /// The posterior network.
+    pub fn posterior(&self) -> &Posterior {
+        &self.posterior
+    }
+
+    /// The action heads.
+    pub fn heads(&self) -> &[ActionHead] {
+        &self.heads
+    }
+
+    fn check_frames(&self, x: &Tensor) -> Result<()> {
+        let (_, h, w, c) = x.dims4()?;
+        if (h, w, c) != (self.cfg.height, self.cfg.width, 3) {
+            candle_core::bail!(
+                "frames are {w}x{h}x{c}, the network takes {}x{}x3",
+                self.cfg.width,
+                self.cfg.height
+            );
+        }
+        Ok(())
+    }
+
+    /// Predicted next frame `[B, H/2^r, W/2^r, 3]` from frame t and latents `z` `[B, k]`.
+    pub fn decode(&self, x_t: &Tensor, z: &Tensor) -> Result<Tensor> {
+        self.check_frames(x_t)?;
+        let (feats, h) = self.encoder.pyramid.forward(x_t)?;
+        let dec = &self.decoder;
+        let (l, r) = (self.cfg.levels, self.cfg.recon_level);
+        let (hl, wl) = self.cfg.deepest_size();
+        let b = x_t.dim(0)?;
+        let top = dec.top.forward(&Tensor::cat(&[&h, z], 1)?)?.relu()?;
+        let mut u = top.reshape((b, hl, wl, self.cfg.widths[l - 1]))?;
+        for (step, j) in (r..=l).rev().enumerate() {
+            let f = if j == 0 { x_t } else { &feats[j - 1] };
+            let zb = dec.from_z[step].forward(z)?.unsqueeze(1)?.unsqueeze(1)?;
+            u = dec.merge[step]
+                .forward(&Tensor::cat(&[&u, f], 3)?)?
+                .broadcast_add(&zb)?
+                .relu()?;
+            if j > r {
+                u = depth_to_space(&dec.up[step].forward(&u)?)?;
+            }
+        }
+        let mut base = x_t.clone();
+        for _ in 0..r {
+            base = avg_pool2(&base)?;
+        }
+        base + dec.out.forward(&u)?
+    }
+
+    /// The reconstruction target for frame t+1: `pool^r(x_t1)`.
+    pub fn target(&self, x_t1: &Tensor) -> Result<Tensor> {
+        let mut t = x_t1.clone();
+        for _ in 0..self.cfg.recon_level {
+            t = avg_pool2(&t)?;
+        }
+        Ok(t)
+    }
+
+    /// The training loss of one batch (see the module docs for the maths).
+    pub fn loss(&self, batch: &Batch, opts: &LossOptions) -> Result<LossParts> {
+        self.check_frames(&batch.x_t)?;
+        self.check_frames(&batch.x_t1)?;
+        let b = batch.x_t.dim(0)?;
+        let n_l = batch.n_labelled;
+        if n_l > b {
+            candle_core::bail!("batch has {b} rows but {n_l} labelled");
+        }
+        let (mu, lv) = self.posterior.forward(&batch.x_t, &batch.x_t1)?;
+        let z = (&mu + (&lv * 0.5)?.exp()?.mul(&batch.eps)?)?;
+        let pred = self.decode(&batch.x_t, &z)?;
+        let target = self.target(&batch.x_t1)?;
+        let (recon_i, variance) =
+            shared_variance_nll(&pred, &target, self.decoder.log_var.as_ref())?;
+        let recon = recon_i.mean_all()?;
+        let kl = kl_std_normal(&mu, &lv)?.mean_all()?;
+        let zero = || Tensor::zeros((), mu.dtype(), mu.device());
+        let action = match (&batch.actions, n_l) {
+            (Some(a), n) if n > 0 => {
+                let mu_l = mu.narrow(0, 0, n)?;
+                let mut sum = zero()?;
+                for (m, head) in self.heads.iter().enumerate() {
+                    let (mean, hlv) = head.forward(&mu_l)?;
+                    let nll = gaussian_nll(a, &mean, &hlv)?.sum(1)?; // [n]
+                    let nll = match &batch.boot {
+                        Some(w) => (nll * w.get(m)?)?,
+                        None => nll,
+                    };
+                    sum = (sum + (nll.sum_all()? / n as f64)?)?;
+                }
+                (sum / self.heads.len() as f64)?
+            }
+            _ => zero()?,
+        };
+        let n_u = b - n_l;
+        let (align, sigma) = if opts.align_weight != 0.0 && n_l >= 2 && n_u >= 2 {
+            mmd2_unbiased(&mu.narrow(0, 0, n_l)?, &mu.narrow(0, n_l, n_u)?, opts.bandwidth)?
+        } else {
+            (zero()?, f64::NAN)
+        };
+        let total = (((&recon + &kl)? + (&action * opts.action_weight)?)?
+            + (&align * opts.align_weight)?)?;
+        Ok(LossParts {
+            total,
+            recon,
+            kl,
+            action,
+            align,
+            variance,
+            sigma,
+        })
+    }
+
+    /// Inference: posterior `(mu, logvar)` and every head's `(mean, logvar)`
+    /// (standardised units, heads reading `mu`) for frame pairs in [0, 1].
+    pub fn infer(&self, x_t: &Tensor, x_t1: &Tensor) -> Result<Inference> {
+        self.check_frames(x_t)?;
+        self.check_frames(x_t1)?;
+        let (mu, logvar) = self.posterior.forward(x_t, x_t1)?;
+        let heads = self
+            .heads
+            .iter()
+            .map(|h| h.forward(&mu))
+            .collect::<Result<Vec<_>>>()?;
+        Ok(Inference { mu, logvar, heads })
+    }
+}
+
+/// What [`Net::infer`] returns.
+#[derive(Debug, Clone)]
+pub struct Inference {
+    /// Posterior means `[B, latent]`.
+    pub mu: Tensor,
+    /// Posterior log-variances `[B, latent]`.
+    pub logvar: Tensor,
+    /// Per head `(mean, logvar)`, each `[B, A]`, standardised action units.
+    pub heads: Vec<(Tensor, Tensor)>,
+}
+
+/// Converts RGB bytes (`n` frames of `H x W x 3`, concatenated) into a
+/// `[n, H, W, 3]` tensor scaled to [0, 1].
+pub fn frames_to_tensor(
+    bytes: Vec<u8>,
+    n: usize,
+    height: usize,
+    width: usize,
+    dtype: candle_core::DType,
+    device: &candle_core::Device,
+) -> Result<Tensor> {
+    let t = Tensor::from_vec(bytes, (n, height, width, 3), device)?;
+    t.to_dtype(dtype)? * (1.0 / 255.0)
+}

@@ -1,0 +1,344 @@
+//! Label checks against the outside: k-means inertia against scikit-learn's
+//! `KMeans(init="k-means++", n_init=10)`, split conformal coverage against
+//! theorem 1 of Angelopoulos & Bates (2021, "A Gentle Introduction to
+//! Conformal Prediction and Distribution-Free Uncertainty Quantification")
+//! and its quantile against NumPy's `quantile(..., method="higher")`, plus the
+//! label stage end to end on a small fake run (fake model, known noise).
+//!
+//! The fake run ([`fake_run`]) is shared with the shard tests.
+
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use actuary::label::conformal;
+use actuary::label::kmeans::{KMeans, KMeansSettings};
+use actuary::label::{
+    ClipLabels, FitOutputs, LabelJob, LabelOptions, Split, Standardisation, TransitionBatch, TransitionModel,
+    label_run,
+};
+use actuary::model::Rng;
+use actuary::store::{ClipRecord, FrameWriter, SourceInfo, write_json_atomic};
+
+use crate::util;
+
+/// Frame size of the fake run (not square, to catch transposed PNGs).
+pub const W: u32 = 16;
+/// Frame height of the fake run.
+pub const H: u32 = 12;
+/// Action dimensions of the fake run.
+pub const DIMS: [&str; 2] = ["dx", "grip"];
+const MEAN: [f64; 2] = [0.5, -1.0];
+const STD: [f64; 2] = [2.0, 0.5];
+/// True noise std (standardised units) around the model's mean.
+const NOISE: f64 = 0.5;
+
+/// A model that reads its "prediction" off the first pixels of frame t: head
+/// means `(px - 128) / 64 + small per-head offsets`, log-variance of a std of
+/// 0.3 (too small: the true noise is 0.5, so conformal must widen it).
+pub struct FakeModel {
+    st: Standardisation,
+}
+
+impl FakeModel {
+    /// The fake model.
+    pub fn new() -> Self {
+        Self {
+            st: Standardisation {
+                dims: DIMS.iter().map(|s| s.to_string()).collect(),
+                mean: MEAN.to_vec(),
+                std: STD.to_vec(),
+            },
+        }
+    }
+    fn signal(frame: &[u8], d: usize) -> f64 {
+        (frame[d] as f64 - 128.0) / 64.0
+    }
+}
+
+impl TransitionModel for FakeModel {
+    fn latent_dims(&self) -> usize {
+        2
+    }
+    fn heads(&self) -> usize {
+        3
+    }
+    fn standardisation(&self) -> &Standardisation {
+        &self.st
+    }
+    fn infer(&self, pairs: &[(&[u8], &[u8])]) -> Result<TransitionBatch, actuary::label::model::ModelFailure> {
+        let mut b = TransitionBatch::default();
+        for (x, _) in pairs {
+            for d in 0..2 {
+                b.latent.push(Self::signal(x, d) as f32);
+            }
+            for h in 0..3 {
+                for d in 0..2 {
+                    b.head_mean.push((Self::signal(x, d) + 0.05 * (h as f64 - 1.0)) as f32);
+                    b.head_logvar.push((0.3f64 * 0.3).ln() as f32);
+                }
+            }
+        }
+        Ok(b)
+    }
+}
+
+fn record(set: &str, id: &str, frames: u32, actions: Option<Vec<Vec<f32>>>) -> ClipRecord {
+    ClipRecord {
+        id: id.into(),
+        set: set.into(),
+        labelled: actions.is_some(),
+        frames,
+        fps: 10.0,
+        width: W,
+        height: H,
+        dropped: 0,
+        repeated: 0,
+        source: SourceInfo {
+            path: format!("/nowhere/{id}.mp4").into(),
+            codec: "h264".into(),
+            width: W,
+            height: H,
+            fps: 10.0,
+            duration_s: frames as f64 / 10.0,
+            frames: frames as u64,
+            rotation: 0,
+            matrix: "bt601".into(),
+            range: "limited".into(),
+            untagged: true,
+        },
+        fingerprint: "0".repeat(64),
+        key: "fake".into(),
+        action_dims: if actions.is_some() { DIMS.iter().map(|s| s.to_string()).collect() } else { Vec::new() },
+        actions,
+        sidecar: None,
+        sidecar_fingerprint: None,
+    }
+}
+
+/// Writes a fake decode stage into `run`: `robot` (labelled: `robot`
+/// clips, 60 frames each) and `human` (unlabelled, 3 clips of 40 frames,
+/// ids with a sub-folder); returns the splits (robot clip i: i % 4 == 1 calib,
+/// == 2 holdout, else train).
+pub fn fake_decode(run: &Path, robot: usize, seed: u64) -> BTreeMap<(String, String), Split> {
+    let decode = run.join("decode");
+    let mut rng = Rng::new(seed);
+    let mut splits = BTreeMap::new();
+    let mut clips: Vec<(String, String, u32, bool)> = (0..robot)
+        .map(|i| ("robot".to_string(), format!("pick-{i:02}"), 60, true))
+        .collect();
+    clips.extend((0..3).map(|i| ("human".to_string(), format!("day2/reach-{i}"), 40, false)));
+    for (i, (set, id, frames, labelled)) in clips.into_iter().enumerate() {
+        let path = ClipRecord::frames_path(&decode, &set, &id);
+        let mut w = FrameWriter::create(&path, W, H).unwrap();
+        let mut store = Vec::new();
+        for _ in 0..frames {
+            let f: Vec<u8> = (0..W * H * 3).map(|_| rng.below(256) as u8).collect();
+            w.push(&f).unwrap();
+            store.push(f);
+        }
+        w.finish().unwrap();
+        let actions = labelled.then(|| {
+            (0..frames as usize - 1)
+                .map(|t| {
+                    (0..2)
+                        .map(|d| ((FakeModel::signal(&store[t], d) + NOISE * rng.normal()) * STD[d] + MEAN[d]) as f32)
+                        .collect()
+                })
+                .collect()
+        });
+        if labelled {
+            let split = match i % 4 {
+                1 => Split::Calib,
+                2 => Split::Holdout,
+                _ => Split::Train,
+            };
+            splits.insert((set.clone(), id.clone()), split);
+        }
+        let rec = record(&set, &id, frames, actions);
+        write_json_atomic(&ClipRecord::record_path(&decode, &set, &id), &rec).unwrap();
+    }
+    splits
+}
+
+/// Writes a fake decode stage and runs the label stage on it with the fake model.
+pub fn fake_run(run: &Path, robot: usize, seed: u64) -> actuary::label::LabelSummary {
+    let splits = fake_decode(run, robot, seed);
+    label(run, splits, 2)
+}
+
+fn label(run: &Path, splits: BTreeMap<(String, String), Split>, threads: usize) -> actuary::label::LabelSummary {
+    let opts = LabelOptions {
+        codes: 6,
+        batch: 16,
+        ..LabelOptions::default()
+    };
+    let fit = FitOutputs {
+        model: Box::new(FakeModel::new()),
+        splits,
+    };
+    let label_dir = run.join("label");
+    let job = LabelJob {
+        run_dir: run,
+        label_dir: &label_dir,
+        key: "fake-label-key",
+        opts: &opts,
+        seed: 7,
+        threads,
+    };
+    label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap_or_else(|e| panic!("label: {e}"))
+}
+
+/// Points for the k-means comparison: 5 Gaussian blobs of different spreads
+/// and sizes in 3-D, partly overlapping (seeded).
+fn blobs() -> Vec<f64> {
+    let mut rng = Rng::new(11);
+    let centres = [[0.0, 0.0, 0.0], [3.0, 0.5, 0.0], [0.0, 4.0, 1.0], [2.0, 2.0, 3.0], [-3.0, 1.0, -1.0]];
+    let spread = [0.5, 0.8, 0.3, 1.0, 0.6];
+    let mut pts = Vec::new();
+    for (c, (centre, s)) in centres.iter().zip(spread).enumerate() {
+        for _ in 0..(80 + 40 * c) {
+            for x in centre {
+                pts.push(x + s * rng.normal());
+            }
+        }
+    }
+    pts
+}
+
+#[test]
+fn kmeans_inertia_within_two_percent_of_scikit_learn() {
+    if !util::require_python(&["numpy", "sklearn"]) {
+        return;
+    }
+    let pts = blobs();
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("points.csv");
+    let text: String = pts
+        .chunks(3)
+        .map(|r| format!("{:?},{:?},{:?}\n", r[0], r[1], r[2]))
+        .collect();
+    std::fs::write(&csv, text).unwrap();
+    for k in [4usize, 8] {
+        let ours = KMeans::fit(&pts, 3, KMeansSettings { k, restarts: 10, max_iterations: 300, seed: 7 }).unwrap();
+        // Reference: scikit-learn KMeans(init="k-means++", n_init=10).inertia_.
+        let code = "import sys, numpy as np\nfrom sklearn.cluster import KMeans\nX = np.loadtxt(sys.argv[1], delimiter=',')\nprint(repr(KMeans(n_clusters=int(sys.argv[2]), init='k-means++', n_init=10, random_state=0).fit(X).inertia_))";
+        let theirs: f64 = util::python(code, &[util::s(&csv), &k.to_string()]).trim().parse().unwrap();
+        let rel = (ours.inertia - theirs).abs() / theirs;
+        assert!(rel <= 0.02, "k {k}: inertia {} vs scikit-learn {theirs} ({:.2}%)", ours.inertia, rel * 100.0);
+    }
+}
+
+#[test]
+fn split_conformal_coverage_follows_theorem_one() {
+    // Angelopoulos & Bates (2021), theorem 1: with n exchangeable calibration
+    // points, P(Y_test in C(X_test)) lies in [1 - alpha, 1 - alpha + 1/(n + 1)].
+    // Each trial draws a fresh calibration set and one test point, so the
+    // covered count over R trials is Binomial(R, coverage); we allow 3 SE.
+    let (alpha, n, trials) = (0.1, 99usize, 20_000usize);
+    let mut rng = Rng::new(5);
+    let mut covered = 0usize;
+    for _ in 0..trials {
+        // Heteroscedastic Gaussian data; the "model" knows the mean and states
+        // a std off by a factor 2 (conformal must correct it).
+        let mut draw = || {
+            let x = rng.uniform() * 4.0 - 2.0;
+            let sd = 0.5 + 0.25 * x.abs();
+            let y = x + sd * rng.normal();
+            (y, x, sd * 0.5)
+        };
+        let scores: Vec<f64> = (0..n)
+            .map(|_| {
+                let (y, m, s) = draw();
+                conformal::score(y, m, s)
+            })
+            .collect();
+        let q = conformal::quantile(&scores, alpha).q;
+        let (y, m, s) = draw();
+        // The stored form: action_std = q * s / z, covered iff |y - m| <= z * action_std.
+        let z = actuary::label::stats::normal_quantile(1.0 - alpha / 2.0);
+        let action_std = q * s / z;
+        if (y - m).abs() <= z * action_std * (1.0 + 1e-12) {
+            covered += 1;
+        }
+    }
+    let p = covered as f64 / trials as f64;
+    let se = (0.9 * 0.1 / trials as f64).sqrt();
+    let (lo, hi) = (1.0 - alpha - 3.0 * se, 1.0 - alpha + 1.0 / (n as f64 + 1.0) + 3.0 * se);
+    assert!(p >= lo && p <= hi, "coverage {p} outside [{lo}, {hi}]");
+}
+
+#[test]
+fn conformal_quantile_matches_numpy_higher_quantile() {
+    if !util::require_python(&["numpy"]) {
+        return;
+    }
+    let mut rng = Rng::new(9);
+    for n in [9usize, 50, 257] {
+        let scores: Vec<f64> = (0..n).map(|_| rng.normal().abs()).collect();
+        let q = conformal::quantile(&scores, 0.1);
+        // Reference: the paper's own snippet, np.quantile(scores, ceil((n+1)(1-alpha))/n, method="higher").
+        let list = scores.iter().map(|v| format!("{v:?}")).collect::<Vec<_>>().join(",");
+        let code = format!(
+            "import numpy as np, math\ns = np.array([{list}])\nn = len(s)\nprint(repr(float(np.quantile(s, math.ceil((n+1)*0.9)/n, method='higher'))))"
+        );
+        let theirs: f64 = util::python(&code, &[]).trim().parse().unwrap();
+        assert_eq!(q.q, theirs, "n {n}");
+    }
+}
+
+#[test]
+fn label_stage_calibrates_and_resumes() {
+    let dir = tempfile::tempdir().unwrap();
+    let run = dir.path();
+    let summary = fake_run(run, 24, 3);
+    let cal = &summary.calibration;
+    assert_eq!(summary.clips_labelled, 27);
+    assert_eq!(summary.transitions, 24 * 59 + 3 * 39);
+    // Coverage of the 90 % interval on holdout clips (6 clips, 354
+    // transitions): binomial SE 0.016, so 0.06 is well over 3 SE.
+    for d in &cal.dims {
+        let cov = d.holdout_coverage.unwrap();
+        assert!((cov - 0.9).abs() < 0.06, "{}: holdout coverage {cov}", d.dim);
+        assert!(d.calib_coverage >= 0.9, "{}: calib coverage {}", d.dim, d.calib_coverage);
+        // The stated std 0.3 is too small for the true 0.5: q must exceed z.
+        assert!(d.quantile.q > cal.z, "{}: q {}", d.dim, d.quantile.q);
+    }
+    assert!(cal.holdout_reliability.ece < 0.15, "ECE {}", cal.holdout_reliability.ece);
+    assert_eq!(cal.holdout_reliability.bins.len(), 10);
+    assert!((cal.z - 1.6448536269514715).abs() < 1e-9);
+    // Codes table: counts cover every transition.
+    let codes: actuary::label::CodesTable =
+        actuary::store::read_json(&run.join("label/codes.json")).unwrap();
+    assert_eq!(codes.codes.len(), 6);
+    assert_eq!(codes.codes.iter().map(|c| c.count).sum::<u64>(), summary.transitions);
+    // Per-clip outputs: one entry per transition; ids with folders work.
+    let human = ClipLabels::read(&run.join("label"), "human", "day2/reach-1").unwrap();
+    assert_eq!(human.action_est.len(), 39);
+    assert_eq!(human.split, Split::Train);
+    assert!(human.confidence.iter().all(|c| (0.0..=1.0).contains(c)));
+    // Resume: a second run reuses everything and changes nothing.
+    let before = std::fs::read(ClipLabels::path(&run.join("label"), "robot", "pick-05")).unwrap();
+    std::fs::remove_file(ClipLabels::path(&run.join("label"), "robot", "pick-05")).unwrap();
+    let splits = fake_decode_splits(24);
+    let again = label(run, splits, 1);
+    assert!(again.state_reused);
+    assert_eq!((again.clips_labelled, again.clips_reused), (1, 26));
+    let after = std::fs::read(ClipLabels::path(&run.join("label"), "robot", "pick-05")).unwrap();
+    assert_eq!(before, after, "relabelled clip is byte-identical (1 vs 2 threads)");
+}
+
+/// The splits `fake_decode` assigns, without writing anything.
+fn fake_decode_splits(robot: usize) -> BTreeMap<(String, String), Split> {
+    (0..robot)
+        .map(|i| {
+            let split = match i % 4 {
+                1 => Split::Calib,
+                2 => Split::Holdout,
+                _ => Split::Train,
+            };
+            (("robot".to_string(), format!("pick-{i:02}")), split)
+        })
+        .collect()
+}
+

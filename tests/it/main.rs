@@ -1,0 +1,10 @@
+//! The integration test binary: one module per area.
+
+mod util;
+
+mod actions;
+mod align;
+mod decode;
+mod spec;
+mod cli;
+mod label;
