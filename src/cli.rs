@@ -46,6 +46,77 @@ pub enum Command {
         /// Worker threads for every stage [default: number of CPUs].
         #[arg(short = 'j', long = "jobs")]
         jobs: Option<usize>,
+        /// With --part: run only this partitioned stage (decode or label) for
+        /// one part; the stages before it must be done.
+        #[arg(long, value_name = "STAGE", requires = "part", conflicts_with = "until")]
+        stage: Option<String>,
+        /// With --stage: run part K of N (0-based, e.g. 2/8). The part writes
+        /// its clips' outputs and RUN/STAGE/parts/K-of-N.json instead of the
+        /// stage manifest; `actuary merge` folds the parts together.
+        #[arg(long, value_name = "K/N", requires = "stage")]
+        part: Option<String>,
+    },
+    /// Fold the parts of a partitioned stage (decode or label) into its stage
+    /// manifest; refuses when a part is missing or was made from other
+    /// settings or inputs.
+    Merge {
+        /// The pipeline spec (TOML).
+        spec: PathBuf,
+        /// The partitioned stage: decode or label.
+        #[arg(long, value_name = "STAGE")]
+        stage: String,
+        /// Number of parts N [default: the spec's `cluster.parts`, 4 if unset].
+        #[arg(long, value_name = "N")]
+        parts: Option<u32>,
+        /// Worker threads [default: number of CPUs].
+        #[arg(short = 'j', long = "jobs")]
+        jobs: Option<usize>,
+    },
+    /// Write Slurm batch scripts for a spec into RUN/cluster/ and submit them
+    /// with sbatch: a job array per partitioned stage (decode, label), single
+    /// jobs for merges, align + fit, shard and publish, chained with
+    /// afterok dependencies. Finished stages and parts get no job, so running
+    /// it again after a failure resubmits only what is left. RUN must be on
+    /// a filesystem shared by every node.
+    Submit {
+        /// The pipeline spec (TOML).
+        spec: PathBuf,
+        /// Number of parts N [default: the spec's `cluster.parts`, 4 if unset].
+        #[arg(long, value_name = "N")]
+        parts: Option<u32>,
+        /// Last stage to run, inclusive [default: shard].
+        #[arg(long, value_name = "STAGE")]
+        until: Option<String>,
+        /// Write and print the scripts without submitting them.
+        #[arg(long)]
+        dry_run: bool,
+        /// Threads used here to fingerprint the inputs [default: number of CPUs].
+        #[arg(short = 'j', long = "jobs")]
+        jobs: Option<usize>,
+    },
+    /// Upload the shards and their manifest to object storage (multipart
+    /// puts), then a commit marker written last with a conditional create.
+    Publish {
+        /// The pipeline spec (TOML).
+        spec: PathBuf,
+        /// Destination URL (s3://BUCKET/PREFIX, gs://, az://, file:///PATH)
+        /// [default: the spec's `cluster.publish`].
+        #[arg(long, value_name = "URL")]
+        to: Option<String>,
+    },
+    /// Download a published dataset into DIR, checking every file against its
+    /// commit marker; a dataset without a commit marker is refused.
+    Pull {
+        /// The dataset URL.
+        url: String,
+        /// Output folder, created when missing.
+        dir: PathBuf,
+        /// S3-compatible endpoint [default: $AWS_ENDPOINT or the provider's].
+        #[arg(long, value_name = "URL")]
+        endpoint: Option<String>,
+        /// Allow a plain http:// endpoint.
+        #[arg(long)]
+        allow_http: bool,
     },
     /// Print what the stages of a run produced.
     Inspect {

@@ -182,9 +182,14 @@ impl DemoOptions {
         if !(self.log_rate.is_finite() && ratio >= 1.0 && (ratio - ratio.round()).abs() < 1e-9) {
             return bad("log_rate", "a whole multiple (1 or more) of fps");
         }
-        if !(4 <= self.min_frames && self.min_frames <= self.max_frames && self.max_frames <= 100_000)
+        if !(4 <= self.min_frames
+            && self.min_frames <= self.max_frames
+            && self.max_frames <= 100_000)
         {
-            return bad("min_frames/max_frames", "4 <= min_frames <= max_frames <= 100000");
+            return bad(
+                "min_frames/max_frames",
+                "4 <= min_frames <= max_frames <= 100000",
+            );
         }
         if self.crf > 51 {
             return bad("crf", "0 to 51");
@@ -308,7 +313,8 @@ fn write_clip(dir: &Path, opts: &DemoOptions, plan: &ClipPlan) -> Result<u64, De
         ),
         Kind::Human => (
             dir.join("human").join(format!("{}.mp4", plan.id)),
-            dir.join("human-truth").join(format!("{}.actions.csv", plan.id)),
+            dir.join("human-truth")
+                .join(format!("{}.actions.csv", plan.id)),
         ),
     };
     let settings = EncodeSettings {
@@ -370,7 +376,9 @@ fn log_csv(sim: &Simulation, log_rate: f64) -> String {
 fn truth_csv(sim: &Simulation, ratio: usize, fps: f64) -> String {
     let mut s = String::from("t,dx,dy,grip\n");
     for (k, chunk) in sim.deltas.chunks(ratio).enumerate() {
-        let sum = chunk.iter().fold([0i64; 2], |a, d| [a[0] + d[0], a[1] + d[1]]);
+        let sum = chunk
+            .iter()
+            .fold([0i64; 2], |a, d| [a[0] + d[0], a[1] + d[1]]);
         let g = sim.grip[k * ratio];
         let _ = writeln!(s, "{},{},{},{}", k as f64 / fps, cm(sum[0]), cm(sum[1]), g);
     }
@@ -525,7 +533,13 @@ mod tests {
             log_rate: 25.0,
             ..DemoOptions::default()
         };
-        assert!(matches!(o.validate(), Err(DemoError::Option { name: "log_rate", .. })));
+        assert!(matches!(
+            o.validate(),
+            Err(DemoError::Option {
+                name: "log_rate",
+                ..
+            })
+        ));
         let o = DemoOptions {
             size: 95,
             ..DemoOptions::default()

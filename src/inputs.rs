@@ -38,6 +38,14 @@ pub enum InputsError {
         #[source]
         source: std::io::Error,
     },
+    /// A set in object storage could not be listed.
+    #[error("cannot list clip set {url}: {reason}")]
+    Remote {
+        /// The set's URL.
+        url: String,
+        /// Why (names the object store error, never credentials).
+        reason: String,
+    },
     /// Two clips in one set map to the same id (e.g. `a.mp4` and `a.mov`).
     #[error("clips {first} and {second} share the id `{id}`")]
     DuplicateId {
@@ -57,17 +65,14 @@ pub fn is_clip(path: &Path) -> bool {
         .is_some_and(|e| CLIP_EXTENSIONS.contains(&e.to_ascii_lowercase().as_str()))
 }
 
-/// The sidecar next to a clip: `NAME.actions.csv`, else `NAME.actions.parquet`.
-pub fn sidecar_for(clip: &Path) -> Option<PathBuf> {
-    let stem = clip.with_extension("");
-    ["actions.csv", "actions.parquet"]
-        .iter()
-        .map(|ext| crate::store::clips::with_suffix(&stem, &format!(".{ext}")))
-        .find(|p| p.is_file())
-}
-
 /// The clips of one set, sorted by id.
 pub fn list_set(set: &SetSpec) -> Result<Vec<ClipInput>, InputsError> {
+    if crate::storage::path_is_url(&set.dir) {
+        return crate::storage::list_set(set).map_err(|e| InputsError::Remote {
+            url: set.dir.to_string_lossy().into_owned(),
+            reason: e.to_string(),
+        });
+    }
     let mut files = Vec::new();
     walk(&set.dir, &mut files)?;
     let mut clips: Vec<ClipInput> = files
@@ -80,7 +85,7 @@ pub fn list_set(set: &SetSpec) -> Result<Vec<ClipInput>, InputsError> {
                 .map(|c| c.as_os_str().to_string_lossy().into_owned())
                 .collect::<Vec<_>>()
                 .join("/");
-            let sidecar = if set.labelled { sidecar_for(&path) } else { None };
+            let sidecar = if set.labelled { crate::actions::sidecar_for(&path) } else { None };
             ClipInput {
                 set: set.name.clone(),
                 labelled: set.labelled,
@@ -105,6 +110,7 @@ pub fn list_set(set: &SetSpec) -> Result<Vec<ClipInput>, InputsError> {
 
 /// The clips of every set, in set order then id order.
 pub fn list_all(spec: &Spec) -> Result<Vec<ClipInput>, InputsError> {
+    crate::storage::configure_store(&spec.cluster.store);
     let mut all = Vec::new();
     for set in &spec.sets {
         all.extend(list_set(set)?);

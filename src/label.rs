@@ -10,6 +10,7 @@
 //! [`reliability`], [`kmeans`] and [`stats`]; [`stage`] runs the two passes.
 
 pub mod conformal;
+pub mod fitted;
 pub mod inspect;
 pub mod kmeans;
 pub mod model;
@@ -162,10 +163,7 @@ pub enum LabelError {
 /// Loads the fit stage's model and splits from `RUN/fit/` (the one place
 /// label depends on fit's API).
 pub fn load_fit(run_dir: &std::path::Path) -> Result<FitOutputs, LabelError> {
-    Err(LabelError::FitUnavailable {
-        dir: run_dir.join("fit"),
-        reason: "this build's fit stage does not expose a fitted model yet".into(),
-    })
+    fitted::load_fit_outputs(run_dir)
 }
 
 /// Runs the label stage.
@@ -179,7 +177,7 @@ pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::
         seed: ctx.spec.seed,
         threads: ctx.threads,
     };
-    let summary = label_run(&job, &fit, &model::DecodedFrames)?;
+    let summary = label_run(&job, &fit, &fitted::AlignColour::load(&ctx.run_dir))?;
     Ok(manifest_of(&summary))
 }
 

@@ -25,6 +25,7 @@
 pub mod actions;
 pub mod align;
 pub mod check;
+pub mod cluster;
 pub mod cli;
 pub mod decode;
 pub mod demo;
@@ -38,6 +39,7 @@ pub mod report;
 pub mod runner;
 pub mod shard;
 pub mod spec;
+pub mod storage;
 pub mod store;
 pub mod util;
 

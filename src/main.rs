@@ -11,6 +11,8 @@ use actuary::error::{CAUTION, EXIT_FAILURE};
 use actuary::runner::{self, RunOptions, Stage};
 use actuary::spec::Spec;
 
+mod cluster_cmd;
+
 fn main() -> ExitCode {
     let cli = Cli::parse();
     match dispatch(cli.command) {
@@ -63,7 +65,34 @@ fn dispatch(command: Command) -> Result<i32> {
             }
             Ok(if report.ok() { 0 } else { EXIT_FAILURE })
         }
-        Command::Run { spec, until, jobs } => {
+        Command::Run {
+            spec,
+            stage: Some(stage),
+            part: Some(part),
+            jobs,
+            ..
+        } => cluster_cmd::run_part(&spec, &stage, &part, default_jobs(jobs)),
+        Command::Merge {
+            spec,
+            stage,
+            parts,
+            jobs,
+        } => cluster_cmd::merge(&spec, &stage, parts, default_jobs(jobs)),
+        Command::Submit {
+            spec,
+            parts,
+            until,
+            dry_run,
+            jobs,
+        } => cluster_cmd::submit(&spec, parts, until.as_deref(), dry_run, default_jobs(jobs)),
+        Command::Publish { spec, to } => cluster_cmd::publish(&spec, to.as_deref()),
+        Command::Pull {
+            url,
+            dir,
+            endpoint,
+            allow_http,
+        } => cluster_cmd::pull(&url, &dir, endpoint, allow_http),
+        Command::Run { spec, until, jobs, .. } => {
             let until = match until {
                 None => Stage::Shard,
                 Some(name) => match Stage::parse(&name) {

@@ -84,6 +84,42 @@ pub struct StageContext<'a> {
     pub settings_hash: String,
     /// Every clip of every set, with fingerprints.
     pub clips: &'a [FingerprintedClip],
+    /// When set, a map stage handles only the clips of this partition.
+    pub partition: Option<Partition>,
+}
+
+impl StageContext<'_> {
+    /// Whether clip `id` of `set` belongs to this run's partition (always true
+    /// when the stage runs whole).
+    pub fn includes(&self, set: &str, id: &str) -> bool {
+        self.partition.is_none_or(|p| p.includes(set, id))
+    }
+}
+
+/// Partition `index` of `count` (0-based): a clip belongs to the partition
+/// given by a stable hash of its set and id, so reruns never move clips.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub struct Partition {
+    /// 0-based partition index.
+    pub index: u32,
+    /// Number of partitions.
+    pub count: u32,
+}
+
+impl Partition {
+    /// Whether clip `id` of `set` falls in this partition.
+    pub fn includes(self, set: &str, id: &str) -> bool {
+        partition_of(set, id, self.count) == self.index
+    }
+}
+
+/// The partition (of `count`) that clip `id` of `set` belongs to: the first
+/// eight bytes of sha256("set/id") modulo `count`.
+pub fn partition_of(set: &str, id: &str, count: u32) -> u32 {
+    use sha2::Digest;
+    let digest = sha2::Sha256::digest(format!("{set}/{id}").as_bytes());
+    let head = u64::from_be_bytes(digest[..8].try_into().expect("8 bytes"));
+    (head % count.max(1) as u64) as u32
 }
 
 /// A clip and the content hashes of its file and sidecar.
@@ -181,6 +217,7 @@ pub fn run(spec: &Spec, opts: &RunOptions) -> Result<Vec<StageOutcome>, RunError
             key: key.clone(),
             settings_hash: settings_hash.clone(),
             clips: &clips,
+            partition: None,
         };
         std::fs::create_dir_all(&ctx.stage_dir).map_err(|source| RunError::Manifest {
             path: ctx.stage_dir.clone(),
@@ -191,6 +228,9 @@ pub fn run(spec: &Spec, opts: &RunOptions) -> Result<Vec<StageOutcome>, RunError
         manifest.tool_version = crate::VERSION.to_string();
         manifest.key = key.clone();
         manifest.settings_hash = settings_hash;
+        // The spec's text hash and path, for `inspect` and the report.
+        manifest.inputs.insert("spec".into(), spec.text_hash.clone());
+        manifest.inputs.insert("spec-path".into(), spec.path.display().to_string());
         if !previous_key.is_empty() {
             manifest
                 .inputs
@@ -213,11 +253,15 @@ pub fn run(spec: &Spec, opts: &RunOptions) -> Result<Vec<StageOutcome>, RunError
     Ok(outcomes)
 }
 
-fn run_stage(stage: Stage, ctx: &StageContext<'_>) -> Result<StageManifest, RunError> {
+/// Runs one stage's code for `ctx` (no skipping, no manifest written); also
+/// used by [`crate::cluster`] for one part of a partitioned stage.
+pub fn run_stage(stage: Stage, ctx: &StageContext<'_>) -> Result<StageManifest, RunError> {
     let boxed = |e: Box<dyn std::error::Error + Send + Sync>| RunError::Stage { stage, source: e };
     match stage {
         Stage::Decode => crate::decode::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
         Stage::Align => crate::align::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
+        Stage::Label => crate::label::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
+        Stage::Shard => crate::shard::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
         _ => Err(RunError::NotBuilt(stage)),
     }
 }
@@ -229,11 +273,21 @@ pub fn fingerprint(clips: &[ClipInput], threads: usize) -> Vec<FingerprintedClip
             .par_iter()
             .map(|c| FingerprintedClip {
                 input: c.clone(),
-                sha256: util::sha256_file(&c.path).unwrap_or_default(),
-                sidecar_sha256: c.sidecar.as_deref().and_then(|s| util::sha256_file(s).ok()),
+                sha256: content_hash(&c.path).unwrap_or_default(),
+                sidecar_sha256: c.sidecar.as_deref().and_then(content_hash),
             })
             .collect()
     })
+}
+
+/// sha256 of a local file, or the listing fingerprint of an object store URL
+/// (see [`crate::storage`]).
+fn content_hash(path: &Path) -> Option<String> {
+    if crate::storage::path_is_url(path) {
+        crate::storage::fingerprint(&path.to_string_lossy())
+    } else {
+        util::sha256_file(path).ok()
+    }
 }
 
 /// Hash of the settings that shape `stage`'s output.
@@ -263,7 +317,9 @@ pub fn settings_hash(spec: &Spec, stage: Stage) -> String {
     }
 }
 
-fn stage_key(stage: Stage, settings: &str, previous: &str, clips: &[FingerprintedClip]) -> String {
+/// The key of `stage` from its settings hash, the previous stage's key and
+/// (for decode) every clip's fingerprints.
+pub fn stage_key(stage: Stage, settings: &str, previous: &str, clips: &[FingerprintedClip]) -> String {
     let inputs: Vec<(&str, &str, &str, Option<&str>)> = if stage == Stage::Decode {
         clips
             .iter()

@@ -158,7 +158,7 @@ pub fn align_run(
     threads: usize,
 ) -> Result<(Alignment, AlignSummary), AlignError> {
     let records = list_decoded(run_dir)?;
-    let mut alignment = identity_alignment(&records, actions, run_dir)?;
+    let mut alignment = identity_alignment(&records, actions)?;
     alignment.resample = opts.resample;
     let decode_dir = run_dir.join("decode");
     let clips: Vec<Clip> = records

@@ -344,7 +344,7 @@ impl AlignedRun {
     /// stage's actions; `actions` gives the mapping rules.
     pub fn passthrough(run_dir: &Path, actions: &ActionsOptions) -> Result<Self, AlignError> {
         let records = list_decoded(run_dir)?;
-        let alignment = identity_alignment(&records, actions, run_dir)?;
+        let alignment = identity_alignment(&records, actions)?;
         Self::from_alignment(run_dir, alignment)
     }
 
@@ -459,11 +459,7 @@ pub(crate) fn rules_of(records: &[ClipRecord], actions: &ActionsOptions) -> Resu
 }
 
 /// An alignment that changes nothing.
-pub(crate) fn identity_alignment(
-    records: &[ClipRecord],
-    actions: &ActionsOptions,
-    run_dir: &Path,
-) -> Result<Alignment, AlignError> {
+pub(crate) fn identity_alignment(records: &[ClipRecord], actions: &ActionsOptions) -> Result<Alignment, AlignError> {
     let (action_dims, rules) = rules_of(records, actions)?;
     let first = &records[0];
     for r in records {
@@ -480,7 +476,6 @@ pub(crate) fn identity_alignment(
             });
         }
     }
-    let _ = run_dir;
     Ok(Alignment {
         version: ALIGNMENT_VERSION,
         fps: first.fps,

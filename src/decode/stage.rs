@@ -168,7 +168,9 @@ pub fn run_stage(ctx: &StageContext<'_>) -> Result<StageManifest, DecodeStageErr
         decode_dir: ctx.stage_dir.clone(),
         settings_hash: ctx.settings_hash.clone(),
     };
-    decode_all(&params)
+    crate::storage::configure_scratch(spec.cluster.scratch.as_deref(), spec.cluster.scratch_limit_bytes);
+    // A part of a partitioned run decodes only its own clips (see `crate::cluster`).
+    decode_part(&params, &|job: &ClipJob| ctx.includes(&job.set, &job.id))
 }
 
 /// The outcome of one clip.
@@ -181,18 +183,29 @@ enum Outcome {
 
 /// Decodes every clip of `params` (the stage proper, without the spec types).
 pub fn decode_all(params: &DecodeParams) -> Result<StageManifest, DecodeStageError> {
+    decode_part(params, &|_| true)
+}
+
+/// Decodes the clips of `params` that `include` accepts; the others are left
+/// as they are (their outputs belong to other parts of a partitioned run).
+/// Sidecar headers are still taken from all clips, so every part checks
+/// against the same header as a whole run.
+pub fn decode_part(
+    params: &DecodeParams,
+    include: &(dyn Fn(&ClipJob) -> bool + Sync),
+) -> Result<StageManifest, DecodeStageError> {
     let started = Instant::now();
     let headers = set_headers(&params.clips);
+    let selected: Vec<&ClipJob> = params.clips.iter().filter(|j| include(j)).collect();
     let stop = AtomicBool::new(false);
     let first_error: std::sync::Mutex<Option<(String, String, String)>> = Default::default();
-    let progress = crate::util::Progress::new("decode", params.clips.len() as u64);
+    let progress = crate::util::Progress::new("decode", selected.len() as u64);
     let pool = crate::util::thread_pool(params.threads);
     let outcomes: Vec<Outcome> = pool.install(|| {
-        params
-            .clips
+        selected
             .par_iter()
             .with_max_len(1)
-            .map(|job| {
+            .map(|&job| {
                 if stop.load(Ordering::SeqCst) {
                     return Outcome::Cancelled;
                 }
@@ -200,7 +213,8 @@ pub fn decode_all(params: &DecodeParams) -> Result<StageManifest, DecodeStageErr
                 let outcome = match decode_one(job, header, params, &stop) {
                     Ok(Some((record, reused))) => Outcome::Done(Box::new(record), reused),
                     Ok(None) => Outcome::Cancelled,
-                    Err((source, reason)) => {
+                    Err(failure) => {
+                        let (source, reason) = *failure;
                         if params.opts.on_error == OnError::Stop {
                             stop.store(true, Ordering::SeqCst);
                             let mut first = first_error.lock().unwrap();
@@ -232,9 +246,13 @@ pub fn decode_all(params: &DecodeParams) -> Result<StageManifest, DecodeStageErr
         clips: Vec::new(),
     };
     let mut keep = BTreeSet::new();
+    for job in params.clips.iter().filter(|j| !include(j)) {
+        keep.insert(ClipRecord::record_path(&params.decode_dir, &job.set, &job.id));
+        keep.insert(ClipRecord::frames_path(&params.decode_dir, &job.set, &job.id));
+    }
     let (mut decoded, mut reused, mut skipped) = (0u64, 0u64, 0u64);
     let (mut frames, mut dropped, mut repeated) = (0u64, 0u64, 0u64);
-    for (job, outcome) in params.clips.iter().zip(outcomes) {
+    for (job, outcome) in selected.iter().zip(outcomes) {
         manifest.inputs.insert(format!("{}/{}", job.set, job.id), job.sha256.clone());
         let (status, line) = match outcome {
             Outcome::Done(r, was_reused) => {
@@ -293,7 +311,7 @@ pub fn decode_all(params: &DecodeParams) -> Result<StageManifest, DecodeStageErr
     }
     sweep(&params.decode_dir.join("clips"), &keep)?;
     let counts = [
-        ("clips", params.clips.len() as u64),
+        ("clips", selected.len() as u64),
         ("decoded", decoded),
         ("reused", reused),
         ("skipped", skipped),
@@ -317,7 +335,8 @@ fn set_headers(clips: &[ClipJob]) -> BTreeMap<String, Vec<String>> {
         if headers.contains_key(&c.set) {
             continue;
         }
-        if let Some(Ok(s)) = c.sidecar.as_deref().map(actions::read_sidecar) {
+        let local = c.sidecar.as_deref().and_then(|p| crate::storage::local_copy(p).ok());
+        if let Some(Ok(s)) = local.as_ref().map(|l| actions::read_sidecar(l.path())) {
             headers.insert(c.set.clone(), s.dims);
         }
     }
@@ -348,7 +367,8 @@ fn reusable(decode_dir: &Path, job: &ClipJob, key: &str) -> Option<ClipRecord> {
     (frames.len() == record.frames as usize).then_some(record)
 }
 
-type ClipFailure = (Option<SourceInfo>, String);
+/// Why a clip failed: its source (when probed) and the reason.
+type ClipFailure = Box<(Option<SourceInfo>, String)>;
 
 /// Decodes one clip and writes its frames and record; `Ok(None)` when the
 /// stage was stopped by another clip before this one wrote its final files.
@@ -363,11 +383,14 @@ fn decode_one(
         return Ok(Some((record, true)));
     }
     if job.sha256.is_empty() && !job.path.is_file() {
-        return Err((None, format!("{}: the clip file cannot be read", job.path.display())));
+        return Err(Box::new((None, format!("{}: the clip file cannot be read", job.path.display()))));
     }
     let opts = &params.opts;
-    let source = probe_checked(&job.path, opts).map_err(|e| (None, e.to_string()))?;
-    let fail = |reason: String| (Some(source.clone()), reason);
+    // A clip in object storage is fetched to node-local scratch and removed after.
+    let local = crate::storage::local_copy(&job.path).map_err(|e| Box::new((None, e.to_string())))?;
+    let mut source = probe_checked(local.path(), opts).map_err(|e| Box::new((None, e.to_string())))?;
+    source.path = job.path.clone();
+    let fail = |reason: String| Box::new((Some(source.clone()), reason));
     // Read the sidecar before decoding, so a bad one costs no decode time.
     let sidecar = if job.labelled {
         let Some(path) = job.sidecar.as_deref() else {
@@ -377,7 +400,8 @@ fn decode_one(
                 job.path.with_extension("actions.csv").display()
             )));
         };
-        let s = actions::read_sidecar(path).map_err(|e| fail(e.to_string()))?;
+        let local_sidecar = crate::storage::local_copy(path).map_err(|e| fail(e.to_string()))?;
+        let s = actions::read_sidecar(local_sidecar.path()).map_err(|e| fail(e.to_string()))?;
         if let Some(expected) = header {
             s.expect_dims(expected).map_err(|e| fail(e.to_string()))?;
         }
@@ -391,7 +415,9 @@ fn decode_one(
     let frames_path = ClipRecord::frames_path(&params.decode_dir, &job.set, &job.id);
     let mut writer = FrameWriter::create(&frames_path, opts.width, opts.height)
         .map_err(|e| fail(e.to_string()))?;
-    let stats = decode_clip(&job.path, opts, &mut writer).map_err(|e| fail(e.to_string()))?;
+    let mut stats = decode_clip(local.path(), opts, &mut writer).map_err(|e| fail(e.to_string()))?;
+    stats.source.path = job.path.clone();
+    drop(local);
     let actions_mapped = match &sidecar {
         Some((s, rules)) => Some(
             actions::map_to_frames(s, rules, opts.fps, stats.frames, params.actions.offset_s)

@@ -9,8 +9,8 @@
 
 use std::path::Path;
 
-use ffmpeg_next as ffmpeg;
 use ffmpeg::{Dictionary, Packet, Rational, codec, color, encoder, format, frame};
+use ffmpeg_next as ffmpeg;
 
 /// An open MP4 file receiving frames.
 pub(crate) struct Mp4Writer {
@@ -40,10 +40,7 @@ impl Mp4Writer {
         ffmpeg::log::set_level(ffmpeg::log::Level::Error);
         let codec = encoder::find_by_name("libx264").ok_or(ffmpeg::Error::EncoderNotFound)?;
         let mut octx = format::output_as(path, "mp4")?;
-        let global_header = octx
-            .format()
-            .flags()
-            .contains(format::Flags::GLOBAL_HEADER);
+        let global_header = octx.format().flags().contains(format::Flags::GLOBAL_HEADER);
         let rate = Rational::from(s.fps);
         let time_base = rate.invert();
 

@@ -66,7 +66,10 @@ impl Look {
                     1.0,
                     rng.range(1.0, 1.05) as f32,
                 ],
-                gradient: [rng.range(-0.002, 0.002) as f32, rng.range(-0.002, 0.002) as f32],
+                gradient: [
+                    rng.range(-0.002, 0.002) as f32,
+                    rng.range(-0.002, 0.002) as f32,
+                ],
                 vignette: 0.05,
                 shadow_dir: [0.15 * s.cos(), 0.15 * s.sin()],
                 skin: SKIN[0],
@@ -84,7 +87,10 @@ impl Look {
                     rng.range(0.97, 1.0) as f32,
                     rng.range(0.82, 0.9) as f32,
                 ],
-                gradient: [rng.range(-0.008, 0.008) as f32, rng.range(-0.008, 0.008) as f32],
+                gradient: [
+                    rng.range(-0.008, 0.008) as f32,
+                    rng.range(-0.008, 0.008) as f32,
+                ],
                 vignette: 0.22,
                 shadow_dir: [0.3 * s.cos(), 0.3 * s.sin()],
                 skin: *rng.pick(&SKIN),
@@ -98,12 +104,28 @@ impl Look {
 
 #[derive(Debug, Clone, Copy)]
 enum Shape {
-    Circle { c: V2, r: f64 },
-    Capsule { a: V2, b: V2, r: f64 },
+    Circle {
+        c: V2,
+        r: f64,
+    },
+    Capsule {
+        a: V2,
+        b: V2,
+        r: f64,
+    },
     /// Rounded box with axis `u` (unit), half extents along `u` and its normal.
-    Box { c: V2, u: V2, half: V2, round: f64 },
+    Box {
+        c: V2,
+        u: V2,
+        half: V2,
+        round: f64,
+    },
     /// Ellipse with axis `u` (unit) and radii along `u` and its normal.
-    Ellipse { c: V2, u: V2, radii: V2 },
+    Ellipse {
+        c: V2,
+        u: V2,
+        radii: V2,
+    },
 }
 
 impl Shape {
@@ -291,7 +313,10 @@ impl Renderer {
             Kind::Robot => self.gripper(state),
             Kind::Human => self.hand(state),
         };
-        let shadow: Vec<Shape> = parts.iter().map(|(s, _)| s.shifted(scale(sd, 8.0))).collect();
+        let shadow: Vec<Shape> = parts
+            .iter()
+            .map(|(s, _)| s.shifted(scale(sd, 8.0)))
+            .collect();
         self.shadow(&mut img, &shadow, 2.5, 0.3);
         for (s, col) in &parts {
             self.fill(&mut img, s, *col);
@@ -392,8 +417,20 @@ impl Renderer {
                 skin,
             ));
             for o in [-1.8, -0.6, 0.6, 1.8] {
-                parts.push((Shape::Circle { c: at(2.6, o), r: 0.95 }, crease));
-                parts.push((Shape::Circle { c: at(2.5, o), r: 0.75 }, skin));
+                parts.push((
+                    Shape::Circle {
+                        c: at(2.6, o),
+                        r: 0.95,
+                    },
+                    crease,
+                ));
+                parts.push((
+                    Shape::Circle {
+                        c: at(2.5, o),
+                        r: 0.75,
+                    },
+                    skin,
+                ));
             }
             parts.push((
                 Shape::Capsule {
@@ -412,7 +449,12 @@ impl Renderer {
                 },
                 skin,
             ));
-            let fingers = [(-2.1, 3.1, -0.16), (-0.7, 3.9, -0.05), (0.7, 4.1, 0.05), (2.1, 3.4, 0.16)];
+            let fingers = [
+                (-2.1, 3.1, -0.16),
+                (-0.7, 3.9, -0.05),
+                (0.7, 4.1, 0.05),
+                (2.1, 3.4, 0.16),
+            ];
             for (o, length, spread) in fingers {
                 let a = at(2.4, o);
                 let dir = unit(add(u, scale(v, spread)));
@@ -523,7 +565,10 @@ mod tests {
 
     #[test]
     fn sdf_signs_and_distances() {
-        let c = Shape::Circle { c: [0.0, 0.0], r: 1.0 };
+        let c = Shape::Circle {
+            c: [0.0, 0.0],
+            r: 1.0,
+        };
         assert!((c.sdf([2.0, 0.0]) - 1.0).abs() < 1e-12);
         let b = Shape::Box {
             c: [0.0, 0.0],

@@ -183,7 +183,9 @@ pub(crate) fn simulate(
         }
         if goals.is_empty() {
             let here = from_micro(micro);
-            plan(&mut goals, body, pace, log_rate, limit, here, &centres, &blocks, rng);
+            plan(
+                &mut goals, body, pace, log_rate, limit, here, &centres, &blocks, rng,
+            );
             goal_ticks = 0;
         }
         let p = from_micro(micro);
@@ -293,7 +295,10 @@ fn plan(
         let b = rng.int(0, blocks.len() as u64 - 1) as usize;
         let c = centres[b];
         // Push towards a spot in the inner table so blocks stay in view.
-        let aim = [rng.range(-limit, limit) * 0.6, rng.range(-limit, limit) * 0.6];
+        let aim = [
+            rng.range(-limit, limit) * 0.6,
+            rng.range(-limit, limit) * 0.6,
+        ];
         let mut dir = [aim[0] - c[0], aim[1] - c[1]];
         let mut len = (dir[0] * dir[0] + dir[1] * dir[1]).sqrt();
         if len < 1e-3 {
@@ -492,5 +497,23 @@ mod tests {
             moved |= first.iter().zip(last).any(|(a, b)| dist(*a, *b) > 1.0);
         }
         assert!(moved);
+    }
+
+    #[test]
+    fn humans_move_about_1_8_times_faster() {
+        let mean_speed = |kind| {
+            let body = Embodiment::of(kind);
+            let (mut total, mut n) = (0.0, 0usize);
+            for seed in 0..30 {
+                let sim = simulate(&body, 100, 5, 50.0, &mut Rng::derive(seed, kind as u64));
+                for d in &sim.deltas {
+                    total += ((d[0] * d[0] + d[1] * d[1]) as f64).sqrt();
+                    n += 1;
+                }
+            }
+            total / n as f64
+        };
+        let ratio = mean_speed(Kind::Human) / mean_speed(Kind::Robot);
+        assert!((1.5..2.2).contains(&ratio), "speed ratio {ratio}");
     }
 }

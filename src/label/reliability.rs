@@ -3,12 +3,15 @@
 //! The raw confidence of a transition is the probability, under the
 //! conformally calibrated per-dimension Gaussians, that every dimension's
 //! error is within tolerance (product over dimensions). It is then
-//! recalibrated by isotonic regression (pool-adjacent-violators; Zadrozny &
-//! Elkan 2002, "Transforming classifier scores into accurate multiclass
-//! probability estimates") of the 0/1 outcome "every dimension within
-//! tolerance" on the calibration clips, evaluated with linear interpolation
-//! between the fitted blocks' mean scores (as scikit-learn's
-//! `IsotonicRegression` predicts), clipped at both ends.
+//! recalibrated against the 0/1 outcome "every dimension within tolerance"
+//! on the calibration clips by histogram binning (equal-mass bins of at least
+//! [`MIN_BIN`] transitions, tied scores kept together; Zadrozny & Elkan 2001,
+//! "Obtaining calibrated probability estimates from decision trees and naive
+//! Bayesian classifiers") made monotone by pool-adjacent-violators isotonic
+//! regression over the bins (Zadrozny & Elkan 2002). The minimum bin size
+//! keeps isotonic regression's usual overfit at the extremes (a top block of
+//! one success mapping to 1.0) away. The map is evaluated with linear
+//! interpolation between the blocks' mean scores, clipped at both ends.
 //!
 //! Reliability: expected calibration error over equal-width bins of [0, 1]
 //! (Naeini, Cooper & Hauskrecht 2015; Guo et al. 2017),
@@ -17,7 +20,12 @@
 use serde::{Deserialize, Serialize};
 
 /// The name recorded for the confidence calibration method.
-pub const METHOD: &str = "isotonic regression (pool-adjacent-violators) of the all-dimensions-within-tolerance outcome on calib clips";
+pub const METHOD: &str = "histogram binning (equal-mass bins of >= 50 calib transitions) made monotone by isotonic regression (pool-adjacent-violators), fitted to the all-dimensions-within-tolerance outcome on calib clips";
+
+/// Fewest calibration transitions in one initial bin of the confidence map.
+pub const MIN_BIN: usize = 50;
+/// Most initial bins of the confidence map.
+pub const MAX_BINS: usize = 50;
 
 /// A monotone map from raw to calibrated confidence.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
@@ -37,17 +45,27 @@ impl Isotonic {
             .map(|(s, o)| (*s, if *o { 1.0 } else { 0.0 }))
             .collect();
         pairs.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.total_cmp(&b.1)));
-        // Blocks: (sum x, sum y, count); equal scores share a block first.
-        let mut blocks: Vec<(f64, f64, f64)> = Vec::new();
-        for (x, y) in pairs {
-            match blocks.last_mut() {
-                Some(last) if last.0 / last.2 == x => {
-                    last.0 += x;
-                    last.1 += y;
-                    last.2 += 1.0;
-                }
-                _ => blocks.push((x, y, 1.0)),
+        // Initial equal-mass bins: (sum x, sum y, count), ties never split.
+        let per_bin = MIN_BIN.max(pairs.len().div_ceil(MAX_BINS));
+        let mut bins: Vec<(f64, f64, f64)> = Vec::new();
+        let mut i = 0;
+        while i < pairs.len() {
+            let mut j = (i + per_bin).min(pairs.len());
+            while j < pairs.len() && pairs[j].0 == pairs[j - 1].0 {
+                j += 1;
             }
+            // A short tail joins the previous bin.
+            if pairs.len() - j < per_bin / 2 {
+                j = pairs.len();
+            }
+            let b = pairs[i..j].iter().fold((0.0, 0.0, 0.0), |a, p| (a.0 + p.0, a.1 + p.1, a.2 + 1.0));
+            bins.push(b);
+            i = j;
+        }
+        // Pool adjacent violators over the bins.
+        let mut blocks: Vec<(f64, f64, f64)> = Vec::new();
+        for b in bins {
+            blocks.push(b);
             while blocks.len() >= 2 {
                 let b = blocks[blocks.len() - 1];
                 let a = blocks[blocks.len() - 2];
@@ -160,15 +178,25 @@ mod tests {
     use super::*;
 
     #[test]
-    fn pav_pools_violators() {
-        let iso = Isotonic::fit(&[0.1, 0.2, 0.3, 0.4], &[false, true, false, true]);
-        // Blocks: {0.1}->0, {0.2,0.3}->0.5, {0.4}->1.
-        assert_eq!(iso.x.len(), 3);
-        assert_eq!(iso.y, vec![0.0, 0.5, 1.0]);
-        assert!((iso.apply(0.25) - 0.5).abs() < 1e-12);
-        assert_eq!(iso.apply(0.0), 0.0);
-        assert_eq!(iso.apply(0.9), 1.0);
-        assert!((iso.apply(0.325) - 0.75).abs() < 1e-12);
+    fn bins_then_pools_violators() {
+        // 200 scores in 4 bins of 50: hit rates 0.2, 0.6, 0.4, 0.8 -> the
+        // middle two pool to 0.5.
+        let scores: Vec<f64> = (0..200).map(|i| i as f64 / 200.0).collect();
+        let rates = [10, 30, 20, 40];
+        let hits: Vec<bool> = (0..200).map(|i| (i % 50) < rates[i / 50]).collect();
+        let iso = Isotonic::fit(&scores, &hits);
+        assert_eq!(iso.y.len(), 3, "{iso:?}");
+        assert!((iso.y[0] - 0.2).abs() < 1e-12 && (iso.y[1] - 0.5).abs() < 1e-12 && (iso.y[2] - 0.8).abs() < 1e-12);
+        assert_eq!(iso.apply(0.0), 0.2);
+        assert_eq!(iso.apply(1.0), 0.8);
+        let mid = iso.apply(0.5);
+        assert!((0.2..=0.8).contains(&mid));
+        // A lone success at the top cannot map to 1.
+        let mut s2 = vec![0.5; 99];
+        s2.push(0.9);
+        let mut h2 = vec![false; 99];
+        h2.push(true);
+        assert!(Isotonic::fit(&s2, &h2).apply(0.95) < 0.05);
     }
 
     #[test]

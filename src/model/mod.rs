@@ -34,8 +34,10 @@ use serde::{Deserialize, Serialize};
 
 /// Default latent size.
 pub const DEFAULT_LATENT: usize = 8;
-/// Default widths of the pyramid levels (channels after each 2x2 step).
-pub const DEFAULT_WIDTHS: [usize; 4] = [32, 64, 64, 64];
+/// Default stem: 2x2 space-to-depth steps before the first dense level (2 = 4x4 patches).
+pub const DEFAULT_STEM: usize = 2;
+/// Default widths of the pyramid levels (channels of each level's feature map).
+pub const DEFAULT_WIDTHS: [usize; 3] = [64, 64, 64];
 /// Default width of the flat feature vector.
 pub const DEFAULT_HIDDEN: usize = 128;
 /// Default hidden width of each action head.
@@ -48,22 +50,24 @@ pub const DEFAULT_RECON_LEVEL: usize = 1;
 pub const DEFAULT_ACTION_WEIGHT: f64 = 100.0;
 /// Default weight of the MMD^2 alignment penalty.
 pub const DEFAULT_ALIGN_WEIGHT: f64 = 100.0;
-/// Initial `ln s2` of a learned shared variance (s2 = 0.01 for [0, 1] pixels).
+/// Initial `ln s2` of a learned shared variance (s2 = 0.01 for pixels in [-1, 1]).
 pub const INITIAL_LOG_VARIANCE: f64 = -4.605_170_185_988_091;
 
 /// The network's shape. Two networks with equal configs have the same
 /// parameter names and shapes.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Config {
-    /// Frame width in pixels (divisible by `2^levels`).
+    /// Frame width in pixels (divisible by `2^(stem + levels - 1)`).
     pub width: usize,
-    /// Frame height in pixels (divisible by `2^levels`).
+    /// Frame height in pixels (divisible by `2^(stem + levels - 1)`).
     pub height: usize,
     /// Latent action size `k`.
     pub latent: usize,
     /// Action dimensions `A`.
     pub action_dims: usize,
-    /// Number of 2x2 pyramid levels `L`.
+    /// Space-to-depth steps before the first level (`S`; level 1 sees `2^S x 2^S` patches).
+    pub stem: usize,
+    /// Number of dense pyramid levels `L` (each after the first halves the size).
     pub levels: usize,
     /// Channels after each level (`levels` entries).
     pub widths: Vec<usize>,
@@ -73,7 +77,7 @@ pub struct Config {
     pub head_hidden: usize,
     /// Ensemble size `M`.
     pub heads: usize,
-    /// Resolution level of the reconstruction (0 = full, 1 = half, ...; at most `levels`).
+    /// Resolution of the reconstruction: 2x2 poolings of the frame (0 = full, 1 = half; at most `stem`).
     pub recon_level: usize,
     /// How the decoder's shared variance is obtained.
     pub variance: SharedVariance,
@@ -86,6 +90,7 @@ impl Default for Config {
             height: 64,
             latent: DEFAULT_LATENT,
             action_dims: 3,
+            stem: DEFAULT_STEM,
             levels: DEFAULT_WIDTHS.len(),
             widths: DEFAULT_WIDTHS.to_vec(),
             hidden: DEFAULT_HIDDEN,
@@ -100,16 +105,14 @@ impl Default for Config {
 /// A network configuration that cannot be built.
 #[derive(Debug, thiserror::Error)]
 pub enum ModelError {
-    /// The frame size is not divisible by `2^levels`.
-    #[error("frame size {width}x{height} is not divisible by {factor} (2^{levels} pyramid levels)")]
+    /// The frame size is not divisible by the pyramid's total downsampling.
+    #[error("frame size {width}x{height} is not divisible by {factor}, the network's downsampling factor")]
     FrameSize {
         /// Width.
         width: usize,
         /// Height.
         height: usize,
-        /// Levels.
-        levels: usize,
-        /// `2^levels`.
+        /// `2^(stem + levels - 1)`.
         factor: usize,
     },
     /// `widths` does not have one entry per level.
@@ -126,13 +129,13 @@ pub enum ModelError {
         /// The setting.
         name: &'static str,
     },
-    /// The reconstruction level is deeper than the pyramid.
-    #[error("reconstruction level {recon_level} is deeper than the {levels} pyramid levels")]
+    /// The reconstruction is coarser than the first feature map.
+    #[error("reconstruction level {recon_level} is coarser than the stem ({stem} steps)")]
     ReconLevel {
         /// Given level.
         recon_level: usize,
-        /// Levels.
-        levels: usize,
+        /// Stem steps.
+        stem: usize,
     },
     /// A candle error while building or running the network.
     #[error(transparent)]
@@ -163,27 +166,27 @@ impl Config {
         if self.widths.contains(&0) {
             return Err(ModelError::Zero { name: "widths" });
         }
-        let factor = 1usize << self.levels.min(16);
+        let factor = 1usize << (self.stem + self.levels - 1).min(24);
         if self.width == 0 || self.height == 0 || self.width % factor != 0 || self.height % factor != 0 {
             return Err(ModelError::FrameSize {
                 width: self.width,
                 height: self.height,
-                levels: self.levels,
                 factor,
             });
         }
-        if self.recon_level > self.levels {
+        if self.recon_level > self.stem {
             return Err(ModelError::ReconLevel {
                 recon_level: self.recon_level,
-                levels: self.levels,
+                stem: self.stem,
             });
         }
         Ok(())
     }
 
-    /// Size `(H / 2^L, W / 2^L)` of the deepest feature map.
+    /// Size `(H / 2^(S+L-1), W / 2^(S+L-1))` of the deepest feature map.
     pub fn deepest_size(&self) -> (usize, usize) {
-        (self.height >> self.levels, self.width >> self.levels)
+        let s = self.stem + self.levels - 1;
+        (self.height >> s, self.width >> s)
     }
 
     /// Size `(H / 2^r, W / 2^r)` of the reconstructed frame.

@@ -1,28 +1,33 @@
 //! The variational inverse-dynamics network and its training loss.
 //!
-//! Shapes (`B` batch, `H x W` frame size, `L` = `cfg.levels`, `c_i` =
-//! `cfg.widths[i-1]`, `k` = `cfg.latent`, `A` = `cfg.action_dims`, `M` =
-//! `cfg.heads`, `r` = `cfg.recon_level`); frames are channels-last in [0, 1]:
+//! Shapes (`B` batch, `H x W` frame size, `S` = `cfg.stem`, `L` =
+//! `cfg.levels`, `c_j` = `cfg.widths[j-1]`, `s_j = 2^(S+j-1)` the scale of
+//! level `j`, `k` = `cfg.latent`, `A` = `cfg.action_dims`, `M` = `cfg.heads`,
+//! `r` = `cfg.recon_level`); frames are channels-last, scaled to [-1, 1]:
 //!
 //! ```text
 //! x_t, x_t1            [B, H, W, 3]
-//! encoder  (frame t)   level i: f_i = relu(Dense(s2d(f_{i-1})))   [B, H/2^i, W/2^i, c_i]
-//!                      h = relu(Dense(flatten(f_L)))               [B, hidden]
+//! encoder  (frame t)   f_1 = relu(Dense(s2d^S(x_t)))              [B, H/s_1, W/s_1, c_1]
+//!                      f_j = relu(Dense(s2d(f_{j-1})))  j = 2..L  [B, H/s_j, W/s_j, c_j]
+//!                      h   = relu(Dense(flatten(f_L)))            [B, hidden]
 //! posterior q(z|t,t+1) same pyramid on [x_t, x_t1, x_t1 - x_t]     [B, H, W, 9]
-//!                      mu, lv = Dense(g), Dense(g)                 [B, k] each
+//!                      mu, lv = Dense(g), Dense(g)                [B, k] each
 //! prior p(z)           N(0, I)
-//! z = mu + exp(lv/2) * eps,  eps ~ N(0, I) given by the caller     [B, k]
-//! decoder p(x_t1|x_t,z) u_L = relu(Dense([h, z]))  reshaped         [B, H/2^L, W/2^L, c_L]
-//!                      level j = L..r: u_j = relu(Dense([u_j, f_j]) + Dense_z(z))
-//!                                      u_{j-1} = d2s(Dense(u_j))  (for j > r)
-//!                      x̂_t1 = pool^r(x_t) + Dense_0(u_r)   (zero-initialised residual)
-//!                                                                  [B, H/2^r, W/2^r, 3]
-//! heads m = 0..M-1     (mean_m, lv_m) = Dense(relu(Dense(mu)))     [B, A] each
+//! z = mu + exp(lv/2) * eps,  eps ~ N(0, I) given by the caller    [B, k]
+//! decoder p(x_t1|x_t,z) u_L = relu(Dense([h, z])) reshaped         [B, H/s_L, W/s_L, c_L]
+//!                      j = L..1: u_j = relu(Dense([u_j, f_j]) + Dense_z(z))
+//!                                u_{j-1} = d2s(Dense(u_j))   (j > 1)
+//!                      x̂_t1 = pool^r(x_t) + d2s^(S-r)(Dense_0(u_1))  (zero-initialised)
+//!                                                                 [B, H/2^r, W/2^r, 3]
+//! heads m = 0..M-1     (mean_m, lv_m) = Dense(relu(Dense(mu)))    [B, A] each
 //! ```
 //!
-//! `f_0` is `x_t` itself; `pool^r` is `r` rounds of 2x2 average pooling, and
-//! the reconstruction target is `pool^r(x_t1)` (the default `r = 1` predicts
-//! the next frame at half resolution, which is what makes the decoder cheap).
+//! `s2d` is space-to-depth (2x2 blocks to channels), `d2s` its inverse and
+//! `pool^r` `r` rounds of 2x2 average pooling; the reconstruction target is
+//! `pool^r(x_t1)`. With the defaults (`S = 2`, `r = 1`) the widest feature
+//! maps are at a quarter of the frame size and the decoder predicts the next
+//! frame at half resolution (four sub-pixels per quarter-size cell), which is
+//! what makes the network cheap on CPU.
 //!
 //! Loss per batch (minimised; the first `n_l` rows are labelled transitions,
 //! the rest unlabelled):
@@ -62,28 +67,35 @@ pub const POSTERIOR_LOGVAR_RANGE: (f64, f64) = (-16.0, 8.0);
 struct Pyramid {
     levels: Vec<Dense>,
     fc: Dense,
+    stem: usize,
 }
 
 impl Pyramid {
     fn new(cfg: &Config, in_channels: usize, vb: VarBuilder) -> Result<Self> {
         let mut levels = Vec::with_capacity(cfg.levels);
-        let mut c = in_channels;
+        let mut c = in_channels << (2 * cfg.stem);
         for i in 0..cfg.levels {
             let out = cfg.widths[i];
-            levels.push(Dense::new(4 * c, out, vb.pp(format!("level{}", i + 1)))?);
-            c = out;
+            levels.push(Dense::new(c, out, vb.pp(format!("level{}", i + 1)))?);
+            c = 4 * out;
         }
         let (hl, wl) = cfg.deepest_size();
-        let fc = Dense::new(hl * wl * c, cfg.hidden, vb.pp("fc"))?;
-        Ok(Self { levels, fc })
+        let fc = Dense::new(hl * wl * cfg.widths[cfg.levels - 1], cfg.hidden, vb.pp("fc"))?;
+        Ok(Self { levels, fc, stem: cfg.stem })
     }
 
     /// Returns the feature maps `f_1..f_L` and the flat features `[B, hidden]`.
     fn forward(&self, x: &Tensor) -> Result<(Vec<Tensor>, Tensor)> {
         let mut feats = Vec::with_capacity(self.levels.len());
         let mut f = x.clone();
-        for layer in &self.levels {
-            f = layer.forward(&space_to_depth(&f)?)?.relu()?;
+        for _ in 0..self.stem {
+            f = space_to_depth(&f)?;
+        }
+        for (j, layer) in self.levels.iter().enumerate() {
+            if j > 0 {
+                f = space_to_depth(&f)?;
+            }
+            f = layer.forward(&f)?.relu()?;
             feats.push(f.clone());
         }
         let b = x.dim(0)?;
@@ -107,7 +119,7 @@ pub struct Posterior {
 }
 
 impl Posterior {
-    /// `(mu, logvar)`, each `[B, latent]`, from frames `[B, H, W, 3]` in [0, 1].
+    /// `(mu, logvar)`, each `[B, latent]`, from frames `[B, H, W, 3]` in [-1, 1].
     pub fn forward(&self, x_t: &Tensor, x_t1: &Tensor) -> Result<(Tensor, Tensor)> {
         let diff = (x_t1 - x_t)?;
         let input = Tensor::cat(&[x_t, x_t1, &diff], 3)?;
@@ -166,9 +178,9 @@ pub struct Net {
 /// rest unlabelled.
 #[derive(Debug, Clone)]
 pub struct Batch {
-    /// Frame t, `[B, H, W, 3]` in [0, 1].
+    /// Frame t, `[B, H, W, 3]` in [-1, 1].
     pub x_t: Tensor,
-    /// Frame t+1, `[B, H, W, 3]` in [0, 1].
+    /// Frame t+1, `[B, H, W, 3]` in [-1, 1].
     pub x_t1: Tensor,
     /// How many leading rows are labelled.
     pub n_labelled: usize,
@@ -255,21 +267,19 @@ impl Net {
 
     fn build_decoder(cfg: &Config, vb: VarBuilder) -> Result<Decoder> {
         let l = cfg.levels;
-        let r = cfg.recon_level;
         let (hl, wl) = cfg.deepest_size();
         let top = Dense::new(cfg.hidden + cfg.latent, hl * wl * cfg.widths[l - 1], vb.pp("top"))?;
-        // Channels of f_j (f_0 = the RGB frame) and of u_j (u_0 takes c_1).
-        let feat_c = |j: usize| if j == 0 { 3 } else { cfg.widths[j - 1] };
-        let u_c = |j: usize| cfg.widths[j.max(1) - 1];
+        let c = |j: usize| cfg.widths[j - 1];
         let (mut merge, mut from_z, mut up) = (Vec::new(), Vec::new(), Vec::new());
-        for j in (r..=l).rev() {
-            merge.push(Dense::new(u_c(j) + feat_c(j), u_c(j), vb.pp(format!("merge{j}")))?);
-            from_z.push(Dense::new(cfg.latent, u_c(j), vb.pp(format!("z{j}")))?);
-            if j > r {
-                up.push(Dense::new(u_c(j), 4 * u_c(j - 1), vb.pp(format!("up{j}")))?);
+        for j in (1..=l).rev() {
+            merge.push(Dense::new(2 * c(j), c(j), vb.pp(format!("merge{j}")))?);
+            from_z.push(Dense::new(cfg.latent, c(j), vb.pp(format!("z{j}")))?);
+            if j > 1 {
+                up.push(Dense::new(c(j), 4 * c(j - 1), vb.pp(format!("up{j}")))?);
             }
         }
-        let out = Dense::zeros(u_c(r), 3, vb.pp("out"))?;
+        let sub = 1usize << (2 * (cfg.stem - cfg.recon_level));
+        let out = Dense::zeros(c(1), 3 * sub, vb.pp("out"))?;
         let log_var = match cfg.variance {
             SharedVariance::Learned => Some(vb.get_with_hints(
                 1,
@@ -320,27 +330,26 @@ impl Net {
         self.check_frames(x_t)?;
         let (feats, h) = self.encoder.pyramid.forward(x_t)?;
         let dec = &self.decoder;
-        let (l, r) = (self.cfg.levels, self.cfg.recon_level);
+        let l = self.cfg.levels;
         let (hl, wl) = self.cfg.deepest_size();
         let b = x_t.dim(0)?;
         let top = dec.top.forward(&Tensor::cat(&[&h, z], 1)?)?.relu()?;
         let mut u = top.reshape((b, hl, wl, self.cfg.widths[l - 1]))?;
-        for (step, j) in (r..=l).rev().enumerate() {
-            let f = if j == 0 { x_t } else { &feats[j - 1] };
+        for (step, j) in (1..=l).rev().enumerate() {
             let zb = dec.from_z[step].forward(z)?.unsqueeze(1)?.unsqueeze(1)?;
             u = dec.merge[step]
-                .forward(&Tensor::cat(&[&u, f], 3)?)?
+                .forward(&Tensor::cat(&[&u, &feats[j - 1]], 3)?)?
                 .broadcast_add(&zb)?
                 .relu()?;
-            if j > r {
+            if j > 1 {
                 u = depth_to_space(&dec.up[step].forward(&u)?)?;
             }
         }
-        let mut base = x_t.clone();
-        for _ in 0..r {
-            base = avg_pool2(&base)?;
+        let mut delta = dec.out.forward(&u)?;
+        for _ in self.cfg.recon_level..self.cfg.stem {
+            delta = depth_to_space(&delta)?;
         }
-        base + dec.out.forward(&u)?
+        self.target(x_t)? + delta
     }
 
     /// The reconstruction target for frame t+1: `pool^r(x_t1)`.
@@ -407,7 +416,7 @@ impl Net {
     }
 
     /// Inference: posterior `(mu, logvar)` and every head's `(mean, logvar)`
-    /// (standardised units, heads reading `mu`) for frame pairs in [0, 1].
+    /// (standardised units, heads reading `mu`) for frame pairs in [-1, 1].
     pub fn infer(&self, x_t: &Tensor, x_t1: &Tensor) -> Result<Inference> {
         self.check_frames(x_t)?;
         self.check_frames(x_t1)?;
@@ -433,7 +442,7 @@ pub struct Inference {
 }
 
 /// Converts RGB bytes (`n` frames of `H x W x 3`, concatenated) into a
-/// `[n, H, W, 3]` tensor scaled to [0, 1].
+/// `[n, H, W, 3]` tensor scaled to [-1, 1] (`v / 127.5 - 1`).
 pub fn frames_to_tensor(
     bytes: Vec<u8>,
     n: usize,
@@ -443,5 +452,5 @@ pub fn frames_to_tensor(
     device: &candle_core::Device,
 ) -> Result<Tensor> {
     let t = Tensor::from_vec(bytes, (n, height, width, 3), device)?;
-    t.to_dtype(dtype)? * (1.0 / 255.0)
+    t.to_dtype(dtype)?.affine(1.0 / 127.5, -1.0)
 }

@@ -155,6 +155,7 @@ fn tiny_config(variance: SharedVariance) -> Config {
         height: 8,
         latent: 3,
         action_dims: 2,
+        stem: 1,
         levels: 2,
         widths: vec![4, 5],
         hidden: 6,

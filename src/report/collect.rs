@@ -456,7 +456,7 @@ fn label_section(
                 dim: d.dim.clone(),
                 holdout: d.holdout_coverage,
                 calib: d.calib_coverage,
-                quantile: d.quantile.q,
+                quantile: Some(d.quantile.q).filter(|q| q.is_finite()),
             })
             .collect(),
         confidence_method: calib.confidence_method.clone(),
@@ -502,8 +502,8 @@ fn examples(
                     set: l.set.clone(),
                     id: l.id.clone(),
                     frame: k as u32,
-                    action_est: l.action_est[k].clone(),
-                    confidence: l.confidence[k],
+                    action_est: l.action_est[k].iter().map(|&v| short(v)).collect(),
+                    confidence: short(l.confidence[k]),
                     ood: l.ood[k],
                 });
             }
@@ -511,6 +511,12 @@ fn examples(
         round += 1;
     }
     out
+}
+
+/// An `f32` as the `f64` of its shortest decimal form (`0.91`, not
+/// `0.9099999666213989`), so JSON shows and re-reads it exactly.
+fn short(v: f32) -> f64 {
+    if v.is_finite() { v.to_string().parse().unwrap_or(v as f64) } else { v as f64 }
 }
 
 fn shard_section(run: &Path, m: &Result<StageManifest, String>, verify: bool) -> Section<ShardFigures> {

@@ -311,8 +311,8 @@ pub struct CoverageDim {
     pub holdout: Option<f64>,
     /// Calib coverage.
     pub calib: f64,
-    /// Conformal quantile.
-    pub quantile: f64,
+    /// Conformal quantile (none when not finite: too few calib points).
+    pub quantile: Option<f64>,
 }
 
 /// A code's use.
@@ -338,9 +338,9 @@ pub struct FrameRef {
     /// Frame index (the transition from it to the next frame).
     pub frame: u32,
     /// Inferred action.
-    pub action_est: Vec<f32>,
+    pub action_est: Vec<f64>,
     /// Confidence.
-    pub confidence: f32,
+    pub confidence: f64,
     /// Out of distribution.
     pub ood: bool,
 }
@@ -423,4 +423,8 @@ pub struct ShardFigures {
     pub all_ok: Option<bool>,
     /// Column names of the schema (from the first file's footer).
     pub columns: Vec<String>,
+    /// Rows per clip set (manifest).
+    pub rows_per_set: BTreeMap<String, u64>,
+    /// Files in `RUN/shard/` that are neither listed shards nor the manifest.
+    pub extra_files: Vec<String>,
 }

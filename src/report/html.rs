@@ -326,6 +326,13 @@ fn shard(h: &mut String, f: &RunFigures) {
         })
         .collect();
     table(h, &["file", "size", "rows (manifest)", "rows (footer)", "sha256 (manifest)", "checksum"], &rows);
+    if !s.rows_per_set.is_empty() {
+        let rows: Vec<Vec<String>> = s.rows_per_set.iter().map(|(k, v)| vec![esc(k), v.to_string()]).collect();
+        table(h, &["set", "rows"], &rows);
+    }
+    if !s.extra_files.is_empty() {
+        let _ = write!(h, "<p class=\"bad\">Unexpected file(s) in the shard folder: {}</p>", esc(&s.extra_files.join(", ")));
+    }
     if !s.columns.is_empty() {
         let _ = write!(h, "<p class=\"meta\">Columns: {}</p>", esc(&s.columns.join(", ")));
     }

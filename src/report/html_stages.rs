@@ -322,7 +322,7 @@ pub fn label(h: &mut String, g: &Gathered) {
     let rows: Vec<Vec<String>> = l
         .coverage
         .iter()
-        .map(|c| vec![esc(&c.dim), num(c.holdout, 3), num(Some(c.calib), 3), num(Some(nominal), 3), num(Some(c.quantile), 3)])
+        .map(|c| vec![esc(&c.dim), num(c.holdout, 3), num(Some(c.calib), 3), num(Some(nominal), 3), num(c.quantile, 3)])
         .collect();
     table(h, &["dimension", "holdout coverage", "calib coverage", "nominal", "conformal quantile"], &rows);
     let rows: Vec<Vec<String>> = l
@@ -409,7 +409,7 @@ pub fn unlabelled(h: &mut String, g: &Gathered) {
     match planar_dims(&l.dims) {
         Some((ix, iy)) if !l.contact_sheet.is_empty() => {
             let scale = arrow_scale(
-                l.contact_sheet.iter().filter(|r| r.action_est.len() > ix.max(iy)).map(|r| (r.action_est[ix] as f64, r.action_est[iy] as f64)),
+                l.contact_sheet.iter().filter(|r| r.action_est.len() > ix.max(iy)).map(|r| (r.action_est[ix], r.action_est[iy])),
                 g.records.first().map_or(64.0, |r| r.width.min(r.height) as f64) * SCALE as f64 * 0.42,
             );
             let _ = write!(
@@ -419,7 +419,7 @@ pub fn unlabelled(h: &mut String, g: &Gathered) {
                 esc(&l.dims[iy])
             );
             for r in &l.contact_sheet {
-                let Some(c) = strip(g, std::slice::from_ref(r), |r| r.action_est.get(ix).zip(r.action_est.get(iy)).map(|(&x, &y)| (x as f64, y as f64)), scale) else {
+                let Some(c) = strip(g, std::slice::from_ref(r), |r| r.action_est.get(ix).zip(r.action_est.get(iy)).map(|(&x, &y)| (x, y)), scale) else {
                     continue;
                 };
                 h.push_str("<figure>");

@@ -274,7 +274,7 @@ fn label(o: &mut String, f: &RunFigures) {
     let l = f.label.get().expect("checked");
     let _ = writeln!(o, "  alpha {:.3} (nominal coverage {:.3})", l.alpha, l.nominal_coverage);
     for c in &l.coverage {
-        let _ = writeln!(o, "  coverage {:<8} holdout {} calib {:.3} quantile {:.3}", c.dim, num(c.holdout, 3), c.calib, c.quantile);
+        let _ = writeln!(o, "  coverage {:<8} holdout {} calib {:.3} quantile {}", c.dim, num(c.holdout, 3), c.calib, num(c.quantile, 3));
     }
     let r = &l.reliability;
     let _ = writeln!(
@@ -338,6 +338,12 @@ fn shard(o: &mut String, f: &RunFigures) {
                 None => "",
             }
         );
+    }
+    for (set, n) in &s.rows_per_set {
+        let _ = writeln!(o, "  set {set:<12} {n} rows");
+    }
+    for e in &s.extra_files {
+        let _ = writeln!(o, "  unexpected file in the shard folder: {e}");
     }
     match s.all_ok {
         Some(true) => o.push_str("  every checksum and row count verified\n"),

@@ -74,11 +74,26 @@ pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> S
             });
         }
     }
+    let mut extra_files: Vec<String> = std::fs::read_dir(shard_dir)
+        .map(|rd| {
+            rd.filter_map(|e| e.ok())
+                .map(|e| e.file_name().to_string_lossy().into_owned())
+                .filter(|n| n != crate::store::manifest::MANIFEST_FILE && !files.get(n).is_some_and(|f| f.sha256.is_some()))
+                .collect()
+        })
+        .unwrap_or_default();
+    extra_files.sort();
+    let rows_per_set = summary
+        .get("rows_per_set")
+        .and_then(|v| v.as_object())
+        .map(|m| m.iter().filter_map(|(k, v)| v.as_u64().map(|n| (k.clone(), n))).collect())
+        .unwrap_or_default();
     let files: Vec<ShardFile> = files.into_values().collect();
     let all_ok = verify.then(|| {
         files
             .iter()
             .all(|f| f.verified == Some(true) && f.rows.is_some() && f.rows == f.footer_rows)
+            && extra_files.is_empty()
     });
     Section::Ok(ShardFigures {
         rows: files.iter().map(|f| f.rows.or(f.footer_rows).unwrap_or(0)).sum(),
@@ -87,5 +102,7 @@ pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> S
         all_ok,
         columns,
         files,
+        rows_per_set,
+        extra_files,
     })
 }

@@ -98,8 +98,14 @@ fn resolve_sets(
         {
             p.at(&key, dir.span(), "set names may hold only letters, digits, `-` and `_`");
         }
-        let dir_path = absolute(base, dir.get_ref());
-        if !dir_path.is_dir() {
+        // An object store URL (s3://, gs://, az://, file://) is listed remotely.
+        let remote = super::cluster::is_store_url(dir.get_ref());
+        let dir_path = if remote {
+            PathBuf::from(dir.get_ref().trim_end_matches('/'))
+        } else {
+            absolute(base, dir.get_ref())
+        };
+        if !remote && !dir_path.is_dir() {
             p.at(
                 &format!("{key}.dir"),
                 dir.span(),

@@ -206,7 +206,8 @@ fn parquet_sidecar_written_by_pyarrow_reads_like_the_csv() {
         "t,dx,dy,grip\n0,0.5,-3,0\n0.02,0.25,7,1\n0.04,-0.125,0,1\n0.07,1.75,12,0\n",
     )
     .unwrap();
-    // Source: pyarrow (writes the Parquet file; float32, int64 and float64 columns).
+    // Source: pyarrow (writes the Parquet file; float32, int64 and float64 columns, with
+    // pyarrow's default snappy compression, hence the parquet crate's `snap` feature).
     python(
         r#"
 import sys

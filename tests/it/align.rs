@@ -147,6 +147,7 @@ fn clip_sped_up_by_ffmpeg_setpts_reads_as_twice_the_motion_rate() {
     let b = ffmpeg_frames(&fast);
     let (ra, rb) = (rate(&a), rate(&b));
     let ratio = rb / ra;
+    eprintln!("motion rate original {ra:.3}, setpts=0.5 {rb:.3} px/frame, ratio {ratio:.3}");
     assert!((ratio - 2.0).abs() <= 0.1, "motion rates {ra:.3} and {rb:.3} px/frame: ratio {ratio:.3}, want 2.0 +- 0.1");
 }
 
@@ -400,6 +401,7 @@ fn sidecar_shifted_by_0_3_s_is_estimated_back_within_one_frame_interval() {
     let (alignment, summary) = align_run(&run, &opts, &actions_opts(Offset::Estimate), 2).unwrap();
     let c1 = alignment.clips.iter().find(|c| c.id == "c1").unwrap();
     let est = c1.offset.unwrap();
+    eprintln!("offset estimate {est:?}");
     assert!(est.trusted, "{est:?}");
     assert!((est.offset_s - -0.3).abs() <= 1.0 / fps, "estimated {est:?}, want -0.3 +- 0.1");
     let c2 = alignment.clips.iter().find(|c| c.id == "c2").unwrap().offset.unwrap();
@@ -431,6 +433,7 @@ fn faster_set_is_resampled_colour_matched_and_mapped_back_to_the_decode_grid() {
     }
     let (alignment, summary) = align_run(&run, &AlignOptions::default(), &actions_opts(Offset::Seconds(0.0)), 2).unwrap();
     let human = summary.sets.iter().find(|s| s.name == "human").unwrap();
+    eprintln!("gap {} -> {}, speed factor {}", summary.gap_before, summary.gap_after, human.speed_factor);
     assert!((human.speed_factor - 2.0).abs() < 0.15, "speed factor {}", human.speed_factor);
     let robot_rate = summary.labelled_motion_rate.unwrap();
     let after = human.motion_rate_after.unwrap();

@@ -269,7 +269,7 @@ fn split_conformal_coverage_follows_theorem_one() {
 }
 
 #[test]
-fn conformal_quantile_matches_numpy_higher_quantile() {
+fn conformal_quantile_matches_numpy_empirical_quantile() {
     if !util::require_python(&["numpy"]) {
         return;
     }
@@ -277,10 +277,10 @@ fn conformal_quantile_matches_numpy_higher_quantile() {
     for n in [9usize, 50, 257] {
         let scores: Vec<f64> = (0..n).map(|_| rng.normal().abs()).collect();
         let q = conformal::quantile(&scores, 0.1);
-        // Reference: the paper's own snippet, np.quantile(scores, ceil((n+1)(1-alpha))/n, method="higher").
+        // Reference: the paper's own snippet, np.quantile(scores, ceil((n+1)(1-alpha))/n, method="inverted_cdf"), the empirical quantile inf{s: F_n(s) >= level} that the paper's definition uses (its code listing writes method="higher", which indexes (n-1)*level and can pick one rank above).
         let list = scores.iter().map(|v| format!("{v:?}")).collect::<Vec<_>>().join(",");
         let code = format!(
-            "import numpy as np, math\ns = np.array([{list}])\nn = len(s)\nprint(repr(float(np.quantile(s, math.ceil((n+1)*0.9)/n, method='higher'))))"
+            "import numpy as np, math\ns = np.array([{list}])\nn = len(s)\nprint(repr(float(np.quantile(s, math.ceil((n+1)*0.9)/n, method='inverted_cdf'))))"
         );
         let theirs: f64 = util::python(&code, &[]).trim().parse().unwrap();
         assert_eq!(q.q, theirs, "n {n}");
@@ -293,6 +293,7 @@ fn label_stage_calibrates_and_resumes() {
     let run = dir.path();
     let summary = fake_run(run, 24, 3);
     let cal = &summary.calibration;
+    eprintln!("{}", serde_json::to_string_pretty(cal).unwrap());
     assert_eq!(summary.clips_labelled, 27);
     assert_eq!(summary.transitions, 24 * 59 + 3 * 39);
     // Coverage of the 90 % interval on holdout clips (6 clips, 354

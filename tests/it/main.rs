@@ -8,3 +8,7 @@ mod decode;
 mod spec;
 mod cli;
 mod label;
+mod pipeline;
+mod report;
+mod demo;
+mod shard;
