@@ -33,10 +33,15 @@ for i in $(seq 1 "$CLIPS"); do
       -vf "noise=alls=12:allf=t+u:all_seed=$i" -c:v libx264 -preset veryfast -pix_fmt yuv420p "$clip"
   fi
 done
+# The spec needs a labelled set: give every clip a one-dimension action log.
+for i in $(seq 1 "$CLIPS"); do
+  printf 't,dx\n0,0\n1,0\n' > "$OUT/clips1/c$i.actions.csv"
+done
 # 10x: every clip ten times under different ids.
 for i in $(seq 1 "$CLIPS"); do
   for j in $(seq 1 10); do
     [ -f "$OUT/clips10/c$i-$j.mp4" ] || cp "$OUT/clips1/c$i.mp4" "$OUT/clips10/c$i-$j.mp4"
+    cp "$OUT/clips1/c$i.actions.csv" "$OUT/clips10/c$i-$j.actions.csv"
   done
 done
 frames1=$((CLIPS * SECS * FPS))
@@ -47,7 +52,7 @@ spec() { # spec NAME CLIPDIR
 out = "run-$1"
 [sets.bench]
 dir = "$2"
-labelled = false
+labelled = true
 [decode]
 fps = $FPS
 size = [$W, $H]
@@ -61,8 +66,12 @@ run_stage() {
   rm -rf "$OUT/run-$1"
   local t0 t1
   t0=$(date +%s.%N)
-  ACTUARY_QUIET=1 /usr/bin/time -v -o "$OUT/$1.time" "$BIN" run "$OUT/$1.toml" --until decode -j "$THREADS" \
-    > "$OUT/$1.log" 2>&1
+  if ! ACTUARY_QUIET=1 /usr/bin/time -v -o "$OUT/$1.time" "$BIN" run "$OUT/$1.toml" --until decode \
+    -j "$THREADS" > "$OUT/$1.log" 2>&1; then
+    echo "actuary run failed, see $OUT/$1.log:" >&2
+    tail -5 "$OUT/$1.log" >&2
+    exit 1
+  fi
   t1=$(date +%s.%N)
   local rss
   rss=$(awk -F: '/Maximum resident set size/ {gsub(/ /, "", $2); print $2}' "$OUT/$1.time")
@@ -80,8 +89,10 @@ cli() {
   echo "$t1 - $t0" | bc -l
 }
 
-read -r s1 rss1 < <(run_stage one)
-read -r s10 rss10 < <(run_stage ten)
+r1=$(run_stage one)
+r10=$(run_stage ten)
+read -r s1 rss1 <<< "$r1"
+read -r s10 rss10 <<< "$r10"
 c_default=$(cli "")
 c_same=$(cli ":flags=area+accurate_rnd+full_chroma_int")
 

@@ -43,7 +43,8 @@
 //!    of the unlabelled frames matched to the pooled labelled statistics, per set or per clip,
 //!    applied when a frame is read (no second copy unless `copy-frames = true`).
 //! 2. Motion-speed normalisation ([`motion`]): each clip's motion rate is the median over frame
-//!    pairs of the mean block-matching displacement (pixels per frame) of its moving blocks; a
+//!    pairs of the median block-matching displacement (pixels per frame, integer search refined
+//!    by Lucas-Kanade steps) of its moving blocks; a
 //!    set faster than the other domain by more than `speed-threshold` has its time base stretched
 //!    by the ratio.
 //! 3. Domain gap ([`gap`]): Fréchet distance between Gaussian fits of per-frame colour/texture
@@ -168,7 +169,7 @@ pub enum AlignError {
         id: String,
         /// The cause.
         #[source]
-        source: crate::actions::ActionsError,
+        source: Box<crate::actions::ActionsError>,
     },
     /// The decode stage has produced no clip.
     #[error("align: no decoded clips under {}", dir.display())]

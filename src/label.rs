@@ -177,7 +177,10 @@ pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::
         seed: ctx.spec.seed,
         threads: ctx.threads,
     };
-    let summary = label_run(&job, &fit, &fitted::AlignColour::load(&ctx.run_dir))?;
+    // A part of a partitioned run labels only its own clips (see `crate::cluster`).
+    let include = |set: &str, id: &str| ctx.includes(set, id);
+    let part: Option<stage::PartFilter<'_>> = ctx.partition.map(|_| &include as stage::PartFilter<'_>);
+    let summary = stage::label_run_part(&job, &fit, &fitted::AlignColour::load(&ctx.run_dir), part)?;
     Ok(manifest_of(&summary))
 }
 

@@ -260,9 +260,9 @@ pub fn run_stage(stage: Stage, ctx: &StageContext<'_>) -> Result<StageManifest, 
     match stage {
         Stage::Decode => crate::decode::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
         Stage::Align => crate::align::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
+        Stage::Fit => crate::fit::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
         Stage::Label => crate::label::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
         Stage::Shard => crate::shard::run_stage(ctx).map_err(|e| boxed(Box::new(e))),
-        _ => Err(RunError::NotBuilt(stage)),
     }
 }
 

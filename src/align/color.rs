@@ -121,9 +121,9 @@ impl LabAccumulator {
     pub fn add_frame(&mut self, rgb: &[u8]) {
         for px in rgb.chunks_exact(3) {
             let lab = rgb_to_lab([px[0], px[1], px[2]]);
-            for c in 0..3 {
-                self.sum[c] += lab[c];
-                self.sum_sq[c] += lab[c] * lab[c];
+            for (c, v) in lab.iter().enumerate() {
+                self.sum[c] += v;
+                self.sum_sq[c] += v * v;
             }
             self.n += 1;
         }

@@ -121,8 +121,8 @@ pub fn sqrt_psd(m: &Mat) -> Mat {
     let n = m.n;
     let (w, v) = sym_eigen(m);
     let mut r = Mat::zeros(n);
-    for k in 0..n {
-        let s = w[k].max(0.0).sqrt();
+    for (k, wk) in w.iter().enumerate() {
+        let s = wk.max(0.0).sqrt();
         if s == 0.0 {
             continue;
         }

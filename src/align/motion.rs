@@ -176,7 +176,7 @@ fn block_displacement(
         }
     }
     let fin = fin.min(best.0);
-    if !(fin < 0.5 * zero) {
+    if fin.is_nan() || fin >= 0.5 * zero {
         return None;
     }
     let (x, y) = (f64::from(ux), f64::from(uy));

@@ -186,7 +186,7 @@ pub fn align_run(
                 let wrap = |source| AlignError::Actions {
                     set: c.rec.set.clone(),
                     id: c.rec.id.clone(),
-                    source,
+                    source: Box::new(source),
                 };
                 let sidecar = read_sidecar(side).map_err(wrap)?;
                 let energy = motion_energy(&c.frames);

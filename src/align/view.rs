@@ -287,7 +287,7 @@ impl AlignedClip {
         map_series(&series, rules, targets).map_err(|source| AlignError::Actions {
             set: self.info.set.clone(),
             id: self.info.id.clone(),
-            source,
+            source: Box::new(source),
         })
     }
 
@@ -452,7 +452,7 @@ pub(crate) fn rules_of(records: &[ClipRecord], actions: &ActionsOptions) -> Resu
         AlignError::Actions {
             set: first.set.clone(),
             id: first.id.clone(),
-            source,
+            source: Box::new(source),
         }
     })?;
     Ok((first.action_dims.clone(), rules))

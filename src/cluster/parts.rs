@@ -244,6 +244,8 @@ pub fn merge(spec: &Spec, stage: Stage, count: u32, threads: usize) -> Result<Me
     };
     manifest.stage = stage.name().to_string();
     manifest.tool_version = crate::VERSION.to_string();
+    manifest.inputs.insert("spec".into(), spec.text_hash.clone());
+    manifest.inputs.insert("spec-path".into(), spec.path.display().to_string());
     manifest.key = key;
     manifest.settings_hash = keys[&stage].0.clone();
     manifest.timings.insert("parts".into(), count as f64);

@@ -149,9 +149,6 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
             })
             .collect(),
     };
-    let info_path = dir.join(MODEL_FILE);
-    crate::store::write_json_atomic(&info_path, &info).map_err(FitError::io(&info_path))?;
-
     let mut runs = Vec::new();
     let mut fitted_models = Vec::new();
     for name in info.models.clone() {
@@ -183,6 +180,10 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
         });
         fitted_models.push(FittedModel::from_parts(info.clone(), trained.net, trained.map));
     }
+
+    // Written once the model files exist, so `model.json` always describes them.
+    let info_path = dir.join(MODEL_FILE);
+    crate::store::write_json_atomic(&info_path, &info).map_err(FitError::io(&info_path))?;
 
     // Evaluation on the decode grid, in action units.
     ds.reopen()?;

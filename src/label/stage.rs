@@ -115,6 +115,21 @@ impl Clip {
 
 /// Runs the label stage with the given fit outputs and frame preparation.
 pub fn label_run(job: &LabelJob<'_>, fit: &FitOutputs, prep: &dyn FramePrep) -> Result<LabelSummary, LabelError> {
+    label_run_part(job, fit, prep, None)
+}
+
+/// Clip filter of one part of a partitioned run: `(set, id)` -> whether the part labels it.
+pub type PartFilter<'a> = &'a (dyn Fn(&str, &str) -> bool + Sync);
+
+/// Like [`label_run`], but with `part` set, labels only the clips it accepts
+/// (the fitted state still comes from every clip, so it equals a whole run's)
+/// and leaves the run-wide codes table and calibration files to the merge.
+pub fn label_run_part(
+    job: &LabelJob<'_>,
+    fit: &FitOutputs,
+    prep: &dyn FramePrep,
+    part: Option<PartFilter<'_>>,
+) -> Result<LabelSummary, LabelError> {
     let decode_dir = job.run_dir.join("decode");
     let records = decoded_clips(job.run_dir).map_err(io_at(&decode_dir))?;
     let clips: Vec<Clip> = records
@@ -129,7 +144,7 @@ pub fn label_run(job: &LabelJob<'_>, fit: &FitOutputs, prep: &dyn FramePrep) -> 
         })
         .collect();
     let pool = crate::util::thread_pool(job.threads);
-    pool.install(|| run_passes(job, fit.model.as_ref(), prep, &clips))
+    pool.install(|| run_passes(job, fit.model.as_ref(), prep, &clips, part))
 }
 
 fn run_passes(
@@ -137,6 +152,7 @@ fn run_passes(
     model: &dyn TransitionModel,
     prep: &dyn FramePrep,
     clips: &[Clip],
+    part: Option<PartFilter<'_>>,
 ) -> Result<LabelSummary, LabelError> {
     let started = std::time::Instant::now();
     let state_path = job.label_dir.join(STATE_FILE);
@@ -162,6 +178,9 @@ fn run_passes(
     let mut sets: BTreeMap<String, SetSummary> = BTreeMap::new();
     let (mut labelled_now, mut reused, mut transitions) = (0u64, 0u64, 0u64);
     for clip in clips {
+        if part.is_some_and(|f| !f(&clip.rec.set, &clip.rec.id)) {
+            continue;
+        }
         let path = ClipLabels::path(job.label_dir, &clip.rec.set, &clip.rec.id);
         let old: Option<ClipLabels> = crate::store::read_json(&path).ok();
         let labels = match old.filter(|l| l.key == job.key && l.frames == clip.rec.frames) {
@@ -220,10 +239,12 @@ fn run_passes(
             })
             .collect(),
     };
-    let codes_path = job.label_dir.join(CODES_FILE);
-    crate::store::write_json_atomic(&codes_path, &table).map_err(io_at(&codes_path))?;
-    let cal_path = job.label_dir.join(CALIBRATION_FILE);
-    crate::store::write_json_atomic(&cal_path, &state.calibration).map_err(io_at(&cal_path))?;
+    if part.is_none() {
+        let codes_path = job.label_dir.join(CODES_FILE);
+        crate::store::write_json_atomic(&codes_path, &table).map_err(io_at(&codes_path))?;
+        let cal_path = job.label_dir.join(CALIBRATION_FILE);
+        crate::store::write_json_atomic(&cal_path, &state.calibration).map_err(io_at(&cal_path))?;
+    }
     Ok(LabelSummary {
         clips_labelled: labelled_now,
         clips_reused: reused,

@@ -2,7 +2,7 @@
 //! `KMeans(init="k-means++", n_init=10)`, split conformal coverage against
 //! theorem 1 of Angelopoulos & Bates (2021, "A Gentle Introduction to
 //! Conformal Prediction and Distribution-Free Uncertainty Quantification")
-//! and its quantile against NumPy's `quantile(..., method="higher")`, plus the
+//! and its quantile against NumPy's `quantile(..., method="inverted_cdf")`, plus the
 //! label stage end to end on a small fake run (fake model, known noise).
 //!
 //! The fake run ([`fake_run`]) is shared with the shard tests.
@@ -293,7 +293,6 @@ fn label_stage_calibrates_and_resumes() {
     let run = dir.path();
     let summary = fake_run(run, 24, 3);
     let cal = &summary.calibration;
-    eprintln!("{}", serde_json::to_string_pretty(cal).unwrap());
     assert_eq!(summary.clips_labelled, 27);
     assert_eq!(summary.transitions, 24 * 59 + 3 * 39);
     // Coverage of the 90 % interval on holdout clips (6 clips, 354

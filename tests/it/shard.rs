@@ -209,3 +209,228 @@ fn shuffle_changes_the_order_but_not_the_rows() {
     assert_ne!(plain.shards[0].sha256, mixed.shards[0].sha256);
     assert_eq!(mixed.shuffle_seed, Some(7));
 }
+
+/// The fenced block of `lang` in README.md's "Reading the shards" section.
+fn readme_block(lang: &str) -> String {
+    let readme = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md"))
+        .expect("README.md exists");
+    let start = readme
+        .find("## Reading the shards")
+        .expect("README.md has a \"Reading the shards\" section");
+    let section = &readme[start..];
+    let fence = format!("```{lang}\n");
+    let from = section.find(&fence).unwrap_or_else(|| panic!("no {lang} block in the section")) + fence.len();
+    let len = section[from..].find("```").expect("closed block");
+    section[from..from + len].to_string()
+}
+
+#[test]
+fn readme_snippets_read_the_shards() {
+    if !util::require_python(&["pyarrow", "numpy", "PIL", "duckdb"]) {
+        return;
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let run = dir.path();
+    fake_run(run, 8, 6);
+    let summary = shard(run, &small(), 2);
+    // The tool's own count of rows at or above the threshold.
+    let threshold = 0.15f32;
+    let want: usize = ["robot", "human"]
+        .iter()
+        .flat_map(|set| {
+            let d = run.join("label/clips").join(set);
+            walk_labels(&d)
+        })
+        .map(|l| l.confidence.iter().filter(|c| **c >= threshold).count())
+        .sum();
+    let code = readme_block("python");
+    let out = std::process::Command::new("python3")
+        .args(["-c", &code])
+        .env("RUN", run)
+        .env("MIN_CONFIDENCE", threshold.to_string())
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(String::from_utf8_lossy(&out.stdout).trim(), format!("rows {want}"));
+    // The DuckDB query, pointed at this run (reference: DuckDB).
+    let sql = readme_block("sql").replace("runs/tabletop", util::s(run));
+    let code = "import sys, duckdb\nprint(sum(r[2] for r in duckdb.connect().execute(sys.argv[1]).fetchall()))";
+    assert_eq!(util::python(code, &[&sql]).trim(), summary.rows.to_string());
+}
+
+fn walk_labels(dir: &Path) -> Vec<actuary::label::ClipLabels> {
+    let mut out = Vec::new();
+    for e in std::fs::read_dir(dir).unwrap() {
+        let p = e.unwrap().path();
+        if p.is_dir() {
+            out.extend(walk_labels(&p));
+        } else if p.to_string_lossy().ends_with(".labels.json") {
+            out.push(actuary::store::read_json(&p).unwrap());
+        }
+    }
+    out
+}
+
+/// Benchmarks (not run by default; `bench/shard_bench.sh` runs them in release
+/// mode and compares with pyarrow). They print JSON lines and assert nothing
+/// about time.
+mod bench {
+    use std::path::Path;
+    use std::time::Instant;
+
+    use actuary::label::{FitOutputs, LabelJob, LabelOptions, Split, Standardisation, TransitionBatch, TransitionModel};
+    use actuary::model::{Config, Net, SeededInit};
+    use actuary::shard::ShardOptions;
+    use actuary::store::{ClipRecord, FrameWriter, write_json_atomic};
+    use candle_core::{DType, Device};
+
+    const SIZE: u32 = 64;
+
+    /// A fake run of smooth synthetic 64x64 frames (gradients and a moving
+    /// square, so PNG sizes are realistic) with labels from the fake model.
+    fn smooth_run(run: &Path, clips: usize, frames: u32) {
+        let splits = crate::label::fake_decode(run, 0, 1);
+        assert!(splits.is_empty());
+        let decode = run.join("decode");
+        let _ = std::fs::remove_dir_all(decode.join("clips/human"));
+        let mut splits = std::collections::BTreeMap::new();
+        for c in 0..clips {
+            let (set, id) = ("robot", format!("pick-{c:03}"));
+            let path = ClipRecord::frames_path(&decode, set, &id);
+            let mut w = FrameWriter::create(&path, SIZE, SIZE).unwrap();
+            for t in 0..frames {
+                let mut f = vec![0u8; (SIZE * SIZE * 3) as usize];
+                for y in 0..SIZE {
+                    for x in 0..SIZE {
+                        let i = ((y * SIZE + x) * 3) as usize;
+                        let inside = (x + t + c as u32) % SIZE < 12 && (y + 2 * t) % SIZE < 12;
+                        f[i] = (x * 3 + c as u32) as u8;
+                        f[i + 1] = if inside { 230 } else { (y * 2 + t) as u8 };
+                        f[i + 2] = ((x + y) * 2) as u8;
+                    }
+                }
+                w.push(&f).unwrap();
+            }
+            w.finish().unwrap();
+            let actions: Vec<Vec<f32>> = (0..frames - 1).map(|t| vec![(t % 7) as f32 * 0.1, (c % 2) as f32]).collect();
+            let mut rec: ClipRecord =
+                serde_json::from_value(serde_json::to_value(record_template(&id, frames)).unwrap()).unwrap();
+            rec.actions = Some(actions);
+            write_json_atomic(&ClipRecord::record_path(&decode, set, &id), &rec).unwrap();
+            let split = [Split::Train, Split::Calib, Split::Holdout][c % 3];
+            splits.insert((set.to_string(), id), split);
+        }
+        let opts = LabelOptions { codes: 8, ..LabelOptions::default() };
+        let fit = FitOutputs { model: Box::new(crate::label::FakeModel::new()), splits };
+        let label_dir = run.join("label");
+        let job = LabelJob { run_dir: run, label_dir: &label_dir, key: "bench", opts: &opts, seed: 1, threads: 2 };
+        actuary::label::label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap();
+    }
+
+    fn record_template(id: &str, frames: u32) -> serde_json::Value {
+        serde_json::json!({
+            "id": id, "set": "robot", "labelled": true, "frames": frames, "fps": 10.0,
+            "width": SIZE, "height": SIZE, "dropped": 0, "repeated": 0,
+            "source": {"path": "/nowhere.mp4", "codec": "h264", "width": SIZE, "height": SIZE, "fps": 10.0,
+                       "duration_s": frames as f64 / 10.0, "frames": frames, "rotation": 0,
+                       "matrix": "bt601", "range": "limited", "untagged": true},
+            "fingerprint": "0", "key": "bench", "action_dims": ["dx", "grip"], "actions": null,
+            "sidecar": null, "sidecar_fingerprint": null
+        })
+    }
+
+    #[test]
+    #[ignore = "benchmark: run bench/shard_bench.sh"]
+    fn bench_shard_stage() {
+        let run = std::path::PathBuf::from(std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"));
+        let _ = std::fs::remove_dir_all(&run);
+        smooth_run(&run, 200, 100);
+        let opts = ShardOptions::default();
+        let dir = run.join("shard");
+        for threads in [1usize, 2] {
+            let _ = std::fs::remove_dir_all(&dir);
+            let job = actuary::shard::ShardJob { run_dir: &run, shard_dir: &dir, opts: &opts, seed: 7, threads };
+            let t0 = Instant::now();
+            let s = actuary::shard::write_shards(&job).unwrap();
+            let secs = t0.elapsed().as_secs_f64();
+            let bytes: u64 = s.shards.iter().map(|f| f.bytes).sum();
+            println!(
+                "BENCH {{\"what\":\"shard\",\"threads\":{threads},\"rows\":{},\"bytes\":{bytes},\"seconds\":{secs},\"mb_per_s\":{}}}",
+                s.rows,
+                bytes as f64 / 1e6 / secs
+            );
+        }
+    }
+
+    /// The fit stage's network (default shape, seeded weights: inference costs
+    /// the same trained or not) as the label stage's model.
+    struct NetModel {
+        net: Net,
+        _map: candle_nn::VarMap,
+        st: Standardisation,
+        cfg: Config,
+    }
+
+    impl TransitionModel for NetModel {
+        fn latent_dims(&self) -> usize {
+            self.cfg.latent
+        }
+        fn heads(&self) -> usize {
+            self.cfg.heads
+        }
+        fn standardisation(&self) -> &Standardisation {
+            &self.st
+        }
+        fn infer(&self, pairs: &[(&[u8], &[u8])]) -> Result<TransitionBatch, actuary::label::model::ModelFailure> {
+            let n = pairs.len();
+            let (h, w) = (self.cfg.height, self.cfg.width);
+            let cat = |second: bool| pairs.iter().flat_map(|p| if second { p.1 } else { p.0 }.iter().copied()).collect::<Vec<u8>>();
+            let xt = actuary::model::frames_to_tensor(cat(false), n, h, w, DType::F32, &Device::Cpu)?;
+            let xt1 = actuary::model::frames_to_tensor(cat(true), n, h, w, DType::F32, &Device::Cpu)?;
+            let out = self.net.infer(&xt, &xt1)?;
+            let a = self.st.dims.len();
+            let heads: Vec<(Vec<f32>, Vec<f32>)> = out
+                .heads
+                .iter()
+                .map(|(m, lv)| Ok((m.flatten_all()?.to_vec1()?, lv.flatten_all()?.to_vec1()?)))
+                .collect::<Result<_, candle_core::Error>>()?;
+            let mut b = TransitionBatch { latent: out.mu.flatten_all()?.to_vec1()?, ..Default::default() };
+            for i in 0..n {
+                for (m, lv) in &heads {
+                    b.head_mean.extend_from_slice(&m[i * a..(i + 1) * a]);
+                    b.head_logvar.extend_from_slice(&lv[i * a..(i + 1) * a]);
+                }
+            }
+            Ok(b)
+        }
+    }
+
+    #[test]
+    #[ignore = "benchmark: run bench/shard_bench.sh"]
+    fn bench_label_throughput() {
+        let run = std::path::PathBuf::from(std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"));
+        let _ = std::fs::remove_dir_all(&run);
+        smooth_run(&run, 30, 100);
+        let cfg = Config { action_dims: 2, ..Config::default() };
+        let map = candle_nn::VarMap::new();
+        let vb = SeededInit::var_builder(&map, 1, DType::F32, &Device::Cpu);
+        let net = Net::new(&cfg, vb).unwrap();
+        let st = Standardisation { dims: vec!["dx".into(), "grip".into()], mean: vec![0.0; 2], std: vec![1.0; 2] };
+        let splits = (0..30)
+            .map(|c| (("robot".to_string(), format!("pick-{c:03}")), [Split::Train, Split::Calib, Split::Holdout][c % 3]))
+            .collect();
+        let fit = FitOutputs { model: Box::new(NetModel { net, _map: map, st, cfg }), splits };
+        let label_dir = run.join("label-net");
+        let opts = LabelOptions { codes: 8, ..LabelOptions::default() };
+        let job = LabelJob { run_dir: &run, label_dir: &label_dir, key: "bench-net", opts: &opts, seed: 1, threads: 2 };
+        let t0 = Instant::now();
+        let s = actuary::label::label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap();
+        let secs = t0.elapsed().as_secs_f64();
+        println!(
+            "BENCH {{\"what\":\"label\",\"threads\":2,\"transitions\":{},\"inferred\":{},\"seconds\":{secs},\"transitions_per_s\":{}}}",
+            s.transitions,
+            s.transitions_inferred,
+            s.transitions_inferred as f64 / secs
+        );
+    }
+}

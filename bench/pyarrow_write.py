@@ -1,0 +1,36 @@
+"""Writes the same table as the shard stage with pyarrow and reports MB/s.
+
+Usage: pyarrow_write.py RUN OUT_DIR. Reads RUN/shard/*.parquet (the tool's
+shards: PNG bytes already encoded, so pyarrow does no image work), then times
+pyarrow.parquet writing that table with the same settings: zstd at the
+manifest's level, row groups of the manifest's size, no dictionary and no
+statistics on `image`, a new file every target-size-mb.
+"""
+import json, os, sys, time
+import pyarrow as pa, pyarrow.parquet as pq
+
+run, out = sys.argv[1], sys.argv[2]
+m = json.load(open(f"{run}/shard/manifest.json"))["summary"] if os.path.exists(f"{run}/shard/manifest.json") else None
+files = sorted(f for f in os.listdir(f"{run}/shard") if f.endswith(".parquet"))
+table = pa.concat_tables([pq.read_table(f"{run}/shard/{f}") for f in files])
+level = int(os.environ.get("ZSTD_LEVEL", "3"))
+rows_per_group = int(os.environ.get("ROW_GROUP_ROWS", "1024"))
+target = float(os.environ.get("TARGET_SIZE_MB", "256")) * 1e6
+cols = [c for c in table.column_names if c != "image"]
+os.makedirs(out, exist_ok=True)
+t0 = time.perf_counter()
+i, written, w, path = 0, 0, None, None
+for start in range(0, table.num_rows, rows_per_group):
+    if w is None:
+        path = f"{out}/part-{i:05d}.parquet"
+        w = pq.ParquetWriter(path, table.schema, compression="zstd", compression_level=level,
+                             use_dictionary=cols, write_statistics=cols)
+    w.write_table(table.slice(start, rows_per_group), row_group_size=rows_per_group)
+    if os.path.getsize(path) >= target:
+        w.close(); w = None; i += 1
+if w is not None:
+    w.close()
+secs = time.perf_counter() - t0
+size = sum(os.path.getsize(f"{out}/{f}") for f in os.listdir(out))
+print("BENCH " + json.dumps({"what": "pyarrow", "pyarrow": pa.__version__, "rows": table.num_rows,
+                             "bytes": size, "seconds": secs, "mb_per_s": size / 1e6 / secs}))

@@ -1,0 +1,13 @@
+#!/usr/bin/env bash
+# Shard stage MB/s against pyarrow writing the same table (same zstd level,
+# row-group size, no dictionary/statistics on `image`, PNG bytes precomputed
+# for pyarrow), and label throughput (transitions/s on 2 threads with the fit
+# stage's default network). One run, release build. Needs python3 + pyarrow.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+work="${BENCH_DIR:-$(mktemp -d)}"
+export ACTUARY_BENCH_RUN="$work/run"
+cargo test --release --test it -- --ignored --nocapture --test-threads 1 shard::bench::bench_shard_stage 2>/dev/null | grep '^BENCH'
+python3 bench/pyarrow_write.py "$work/run" "$work/pyarrow" | grep '^BENCH'
+export ACTUARY_BENCH_RUN="$work/run-label"
+cargo test --release --test it -- --ignored --nocapture --test-threads 1 shard::bench::bench_label_throughput 2>/dev/null | grep '^BENCH'

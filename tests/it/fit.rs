@@ -1,0 +1,167 @@
+//! The fit stage end to end on a tiny synthetic demo: resumption after
+//! SIGKILL, NaN stops, refused checkpoints, a constant action dimension.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+use crate::util::{actuary, s};
+
+/// A tiny network and short schedule (fast on one thread).
+const TINY_FIT: &str = "[fit]\nlatent = 4\nwidths = [8, 8, 8]\nhidden = 16\nhead-hidden = 8\nheads = 2\n\
+                        steps = 120\nbatch = 8\ncheckpoint-every = 10\n";
+
+/// Generates a small demo (4 robot, 2 human clips) into `dir/clips`.
+fn demo(dir: &Path) -> PathBuf {
+    let clips = dir.join("clips");
+    let (code, _, err) = actuary(&["demo-clips", s(&clips), "--robot-clips", "4", "--human-clips", "2"]);
+    assert_eq!(code, 0, "{err}");
+    clips
+}
+
+/// Writes a spec for the clips in `clips` with output `out` and `[fit]` text.
+fn spec(dir: &Path, name: &str, clips: &Path, out: &str, fit: &str) -> PathBuf {
+    let text = format!(
+        "out = \"{out}\"\nseed = 3\n\n[sets.robot]\ndir = \"{robot}\"\nlabelled = true\n\n\
+         [sets.human]\ndir = \"{human}\"\nlabelled = false\neval-truth = \"{truth}\"\n\n\
+         [decode]\nfps = 10\nsize = [32, 32]\n\n[actions]\nmap = {{ dx = \"sum\", dy = \"sum\", grip = \"hold\" }}\n\n{fit}",
+        robot = s(&clips.join("robot")),
+        human = s(&clips.join("human")),
+        truth = s(&clips.join("human-truth")),
+    );
+    let path = dir.join(name);
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+fn run_fit(spec: &Path) -> (i32, String) {
+    let (code, _, err) = actuary(&["run", s(spec), "--until", "fit", "-j", "1"]);
+    (code, err)
+}
+
+fn metrics(run: &Path) -> serde_json::Value {
+    let text = std::fs::read_to_string(run.join("fit").join("metrics.json")).unwrap();
+    serde_json::from_str(&text).unwrap()
+}
+
+#[test]
+fn killed_fit_resumes_to_identical_metrics_and_foreign_checkpoints_are_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let clips = demo(dir.path());
+    // Uninterrupted reference run.
+    let a = spec(dir.path(), "a.toml", &clips, "run-a", TINY_FIT);
+    let (code, err) = run_fit(&a);
+    assert_eq!(code, 0, "{err}");
+    let reference = metrics(&dir.path().join("run-a"));
+
+    // Same spec, other folder: killed with SIGKILL once a checkpoint exists
+    // (not on a timer), then run again.
+    let b = spec(dir.path(), "b.toml", &clips, "run-b", TINY_FIT);
+    let run_b = dir.path().join("run-b");
+    let ckpt = run_b.join("fit").join("checkpoints").join("semi.safetensors");
+    let mut child = Command::new(env!("CARGO_BIN_EXE_actuary"))
+        .args(["run", s(&b), "--until", "fit", "-j", "1"])
+        .env("ACTUARY_QUIET", "1")
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let started = Instant::now();
+    while !ckpt.exists() {
+        assert!(child.try_wait().unwrap().is_none(), "fit ended before a checkpoint appeared");
+        assert!(started.elapsed() < Duration::from_secs(300), "no checkpoint appeared");
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    child.kill().unwrap(); // SIGKILL on Unix
+    child.wait().unwrap();
+    assert!(
+        !run_b.join("fit").join("manifest.json").exists(),
+        "the fit finished before the kill; the test did not interrupt it"
+    );
+    let (code, err) = run_fit(&b);
+    assert_eq!(code, 0, "{err}");
+    let resumed = metrics(&run_b);
+    assert!(
+        resumed["models"][0]["resumed_from"].as_u64().is_some_and(|s| s > 0),
+        "{}",
+        resumed["models"]
+    );
+    // Same thread count: the holdout and unlabelled metrics are identical.
+    assert_eq!(resumed["metrics"], reference["metrics"]);
+    // The per-step log has every step exactly once.
+    let log = std::fs::read_to_string(run_b.join("fit").join("semi.log.csv")).unwrap();
+    let steps: Vec<u32> = log.lines().skip(1).map(|l| l.split(',').next().unwrap().parse().unwrap()).collect();
+    assert_eq!(steps, (1..=120).collect::<Vec<_>>());
+    // The evaluation-only truth folder is reported as used.
+    assert_eq!(resumed["eval_truth_used"], serde_json::json!(["human"]));
+    let holdout = &resumed["metrics"][0];
+    assert_eq!(holdout["name"], "holdout");
+    for model in ["semi", "labelled-only", "mean-baseline"] {
+        assert!(holdout["models"][model]["dims"]["dx"]["mae"].is_number(), "{holdout}");
+    }
+
+    // A checkpoint from another network shape is refused, never loaded.
+    std::fs::remove_file(run_b.join("fit").join("manifest.json")).unwrap();
+    std::fs::copy(&ckpt, dir.path().join("keep.safetensors")).unwrap();
+    let other_shape = spec(dir.path(), "b.toml", &clips, "run-b", &TINY_FIT.replace("hidden = 16", "hidden = 12"));
+    let (code, err) = run_fit(&other_shape);
+    assert_ne!(code, 0);
+    assert!(err.contains("different network shape") && err.contains("semi.safetensors"), "{err}");
+    // ... and one from other settings too.
+    let other_settings = spec(dir.path(), "b.toml", &clips, "run-b", &TINY_FIT.replace("steps = 120", "steps = 130"));
+    let (code, err) = run_fit(&other_settings);
+    assert_ne!(code, 0);
+    assert!(err.contains("different settings"), "{err}");
+    // The refused checkpoint is untouched.
+    assert_eq!(std::fs::read(&ckpt).unwrap(), std::fs::read(dir.path().join("keep.safetensors")).unwrap());
+}
+
+#[test]
+fn non_finite_loss_stops_naming_step_and_part() {
+    let dir = tempfile::tempdir().unwrap();
+    let clips = demo(dir.path());
+    let fit = TINY_FIT.replace("checkpoint-every = 10", "checkpoint-every = 1") + "learning-rate = 1e12\n";
+    let path = spec(dir.path(), "nan.toml", &clips, "run", &fit);
+    let (code, err) = run_fit(&path);
+    assert_ne!(code, 0);
+    assert!(err.contains("loss is") && err.contains("at step"), "{err}");
+    assert!(err.contains("NaN") || err.contains("inf"), "{err}");
+    // The last good checkpoint is kept.
+    assert!(dir.path().join("run/fit/checkpoints/semi.safetensors").exists());
+}
+
+#[test]
+fn constant_action_dimension_is_reported_and_handled() {
+    let dir = tempfile::tempdir().unwrap();
+    let clips = demo(dir.path());
+    // The gripper command never changes in the robot logs.
+    for entry in std::fs::read_dir(clips.join("robot")).unwrap() {
+        let path = entry.unwrap().path();
+        if path.to_string_lossy().ends_with(".actions.csv") {
+            let text = std::fs::read_to_string(&path).unwrap();
+            let mut out = String::new();
+            for (i, line) in text.lines().enumerate() {
+                if i == 0 {
+                    out.push_str(line);
+                } else {
+                    let mut f: Vec<&str> = line.split(',').collect();
+                    *f.last_mut().unwrap() = "1";
+                    out.push_str(&f.join(","));
+                }
+                out.push('\n');
+            }
+            std::fs::write(&path, out).unwrap();
+        }
+    }
+    let fit = TINY_FIT.replace("steps = 120", "steps = 20") + "compare = false\n";
+    let path = spec(dir.path(), "const.toml", &clips, "run", &fit);
+    let (code, err) = run_fit(&path);
+    assert_eq!(code, 0, "{err}");
+    let m = metrics(&dir.path().join("run"));
+    assert_eq!(m["constant_dims"], serde_json::json!(["grip"]));
+    let grip = &m["metrics"][0]["models"]["semi"]["dims"]["grip"];
+    assert!(grip["r2"].is_null(), "{grip}");
+    assert!(grip["mae"].as_f64().unwrap().is_finite(), "{grip}");
+    let (_, out, _) = actuary(&["inspect", s(&dir.path().join("run")), "fit"]);
+    assert!(!out.is_empty());
+}

@@ -1,0 +1,1 @@
+//! Object storage at the edges (placeholder; filled below).
