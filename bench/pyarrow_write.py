@@ -10,7 +10,6 @@ import json, os, sys, time
 import pyarrow as pa, pyarrow.parquet as pq
 
 run, out = sys.argv[1], sys.argv[2]
-m = json.load(open(f"{run}/shard/manifest.json"))["summary"] if os.path.exists(f"{run}/shard/manifest.json") else None
 files = sorted(f for f in os.listdir(f"{run}/shard") if f.endswith(".parquet"))
 table = pa.concat_tables([pq.read_table(f"{run}/shard/{f}") for f in files])
 level = int(os.environ.get("ZSTD_LEVEL", "3"))

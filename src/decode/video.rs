@@ -253,8 +253,10 @@ pub fn decode_clip(
     };
     let mut incoming = VideoFrame::empty();
     let mut packets = 0u64;
-    let mut packet = ffmpeg::Packet::empty();
     loop {
+        // A fresh packet each time: av_read_frame does not release the buffer
+        // of the packet it fills, so reusing one would leak every packet.
+        let mut packet = ffmpeg::Packet::empty();
         match packet.read(&mut opened.input) {
             Ok(()) => {}
             Err(ffmpeg::Error::Eof) => break,

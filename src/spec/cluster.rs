@@ -362,10 +362,8 @@ pub fn resolve(raw: &RawCluster, problems: &mut Problems<'_>) -> ClusterOptions 
         r.extra = extra;
         resolved_jobs.insert(name.clone(), r);
     }
-    if let Some(p) = program {
-        if p.get_ref().trim().is_empty() {
-            problems.at("cluster.program", p.span(), "must name the actuary program on the nodes");
-        }
+    if let Some(p) = program.as_ref().filter(|p| p.get_ref().trim().is_empty()) {
+        problems.at("cluster.program", p.span(), "must name the actuary program on the nodes");
     }
     ClusterOptions {
         parts,

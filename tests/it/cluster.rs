@@ -308,3 +308,48 @@ fn slurm_array_matches_single_machine_and_a_failed_part_is_resubmitted_alone() {
     let again = submit(&slurm, None);
     assert!(again.1.contains("nothing to submit"), "{}", again.1);
 }
+
+/// A tiny full-pipeline spec over the demo generator's clips (our own synthetic scenario).
+const FULL: &str = "[fit]\nlatent = 4\nwidths = [8, 8, 8]\nhidden = 16\nhead-hidden = 8\nheads = 2\nsteps = 20\n\
+                    batch = 8\ncheckpoint-every = 10\ncompare = false\n[label]\ncodes = 4\n[shard]\ntarget-size-mb = 0.05\n";
+
+fn full_spec(root: &Path, name: &str, out: &str, extra: &str) -> PathBuf {
+    let spec = root.join(name);
+    std::fs::write(
+        &spec,
+        format!(
+            "out = \"{out}\"\n[sets.robot]\ndir = \"d/robot\"\nlabelled = true\n[sets.human]\ndir = \"d/human\"\nlabelled = false\n\
+             [decode]\nfps = 10\nsize = [32, 32]\n[actions]\nmap = {{ dx = \"sum\", dy = \"sum\", grip = \"hold\" }}\n{FULL}{extra}"
+        ),
+    )
+    .unwrap();
+    spec
+}
+
+#[test]
+fn slurm_run_of_every_stage_gives_byte_identical_shards() {
+    if !require_ffmpeg() || !require_slurm() {
+        return;
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    let root = tmp.path();
+    ok(&actuary(&["demo-clips", s(&root.join("d")), "--robot-clips", "6", "--human-clips", "4"]));
+    let resources = "[cluster]\nparts = 4\n[cluster.jobs.default]\ncpus-per-task = 1\nmem = \"500M\"\ntime = \"10:00\"\n";
+    let single = full_spec(root, "single.toml", "run-single", "");
+    let slurm = full_spec(root, "slurm.toml", "run-slurm", resources);
+    ok(&actuary(&["run", s(&single), "-j", "1"]));
+    let out = actuary(&["submit", s(&slurm)]);
+    ok(&out);
+    // decode array, its merge, align+fit, label array, its merge, shard.
+    let ids = job_ids(&out.1);
+    assert_eq!(ids.len(), 6, "{}", out.1);
+    wait_for(&ids);
+    let a = files(&root.join("run-single/shard"), &[]);
+    let b = files(&root.join("run-slurm/shard"), &[]);
+    assert!(!a.is_empty() && a.iter().all(|f| f.0.ends_with(".parquet")));
+    assert_eq!(a.len(), b.len(), "shard files differ in number");
+    for (x, y) in a.iter().zip(&b) {
+        assert!(x.0 == y.0 && x.1 == y.1, "{} is not byte-identical", x.0);
+    }
+    assert_eq!(manifest(&root.join("run-single"), "shard")["key"], manifest(&root.join("run-slurm"), "shard")["key"]);
+}
