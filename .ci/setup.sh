@@ -11,7 +11,7 @@ $SUDO apt-get install -y -qq --no-install-recommends \
   ffmpeg libavcodec-dev libavformat-dev libavutil-dev libswscale-dev \
   libswresample-dev libavfilter-dev libavdevice-dev \
   clang libclang-dev pkg-config ca-certificates curl unzip \
-  python3 python3-pip chromium chromium-driver >/dev/null
+  python3 python3-pip chromium chromium-driver time bc >/dev/null
 if ! command -v cargo >/dev/null; then
   curl -sSf https://sh.rustup.rs | sh -s -- -y --profile minimal
   . "$HOME/.cargo/env"

@@ -1,6 +1,6 @@
 """Writes the same table as the shard stage with pyarrow and reports MB/s.
 
-Usage: pyarrow_write.py RUN OUT_DIR. Reads RUN/shard/*.parquet (the tool's
+Usage: pyarrow_write.py SHARD_DIR OUT_DIR. Reads SHARD_DIR/*.parquet (the tool's
 shards: PNG bytes already encoded, so pyarrow does no image work), then times
 pyarrow.parquet writing that table with the same settings: zstd at the
 manifest's level, row groups of the manifest's size, no dictionary and no
@@ -10,8 +10,8 @@ import json, os, sys, time
 import pyarrow as pa, pyarrow.parquet as pq
 
 run, out = sys.argv[1], sys.argv[2]
-files = sorted(f for f in os.listdir(f"{run}/shard") if f.endswith(".parquet"))
-table = pa.concat_tables([pq.read_table(f"{run}/shard/{f}") for f in files])
+files = sorted(f for f in os.listdir(run) if f.endswith(".parquet"))
+table = pa.concat_tables([pq.read_table(f"{run}/{f}") for f in files])
 level = int(os.environ.get("ZSTD_LEVEL", "3"))
 rows_per_group = int(os.environ.get("ROW_GROUP_ROWS", "1024"))
 target = float(os.environ.get("TARGET_SIZE_MB", "256")) * 1e6
@@ -31,5 +31,5 @@ if w is not None:
     w.close()
 secs = time.perf_counter() - t0
 size = sum(os.path.getsize(f"{out}/{f}") for f in os.listdir(out))
-print("BENCH " + json.dumps({"what": "pyarrow", "pyarrow": pa.__version__, "rows": table.num_rows,
+print("BENCH " + json.dumps({"what": "pyarrow", "input": os.path.basename(run), "pyarrow": pa.__version__, "rows": table.num_rows,
                              "bytes": size, "seconds": secs, "mb_per_s": size / 1e6 / secs}))

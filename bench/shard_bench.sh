@@ -7,7 +7,10 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 work="${BENCH_DIR:-$(mktemp -d)}"
 export ACTUARY_BENCH_RUN="$work/run"
-cargo test --release --test it -- --ignored --nocapture --test-threads 1 shard::bench::bench_shard_stage 2>/dev/null | grep '^BENCH'
-python3 bench/pyarrow_write.py "$work/run" "$work/pyarrow" | grep '^BENCH'
+cargo test --release --test it -- --ignored --nocapture --test-threads 1 shard::bench::bench_shard_stage 2>&1 | grep -o 'BENCH {.*}'
+for image in png raw; do
+  rm -rf "$work/pyarrow-$image"
+  python3 bench/pyarrow_write.py "$work/run/shard-$image" "$work/pyarrow-$image" | grep '^BENCH'
+done
 export ACTUARY_BENCH_RUN="$work/run-label"
-cargo test --release --test it -- --ignored --nocapture --test-threads 1 shard::bench::bench_label_throughput 2>/dev/null | grep '^BENCH'
+cargo test --release --test it -- --ignored --nocapture --test-threads 1 shard::bench::bench_label_throughput 2>&1 | grep -o 'BENCH {.*}'

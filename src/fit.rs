@@ -37,7 +37,7 @@ pub use data::{Split, SplitCounts, Standardisation, split_counts};
 pub use error::FitError;
 pub use fitted::{ClipSplit, FittedModel, HeadOutput, InferOutput, LABELLED_ONLY, MODEL_FILE, ModelInfo, SEMI};
 pub use metrics::{DimMetrics, Metrics, ModelMetrics};
-pub use stage::{FitInputs, FitSummary, METRICS_FILE, ModelRun, fit_run, inspect_text, run_stage};
+pub use stage::{ComparisonRow, FitInputs, FitSummary, METRICS_FILE, ModelRun, fit_run, inspect_text, run_stage};
 
 use crate::model::{self, SharedVariance};
 

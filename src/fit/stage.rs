@@ -56,10 +56,25 @@ pub struct FitSummary {
     pub models: Vec<ModelRun>,
     /// Evaluation tables: holdout clips, then each unlabelled set with a truth folder.
     pub metrics: Vec<Metrics>,
+    /// The same tables flattened, one row per (evaluation set, model), for readers.
+    pub comparison: Vec<ComparisonRow>,
     /// Sets whose evaluation-only truth folder was read (never used for training).
     pub eval_truth_used: Vec<String>,
     /// Worker threads.
     pub threads: usize,
+}
+
+/// One row of the comparison: a model on an evaluation set.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct ComparisonRow {
+    /// Model (`semi`, `labelled-only`, `mean-baseline`).
+    pub model: String,
+    /// Evaluation set (`holdout`, `unlabelled:<set>`).
+    pub eval: String,
+    /// Mean R^2 over the dimensions where it is defined.
+    pub mean_r2: Option<f64>,
+    /// Per dimension: `r2`, `mae`, `nll`.
+    pub dims: std::collections::BTreeMap<String, super::metrics::DimMetrics>,
 }
 
 /// Where and how to fit.
@@ -229,6 +244,17 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
         table.missing_truth = missing;
         tables.push(table);
     }
+    let comparison = tables
+        .iter()
+        .flat_map(|t| {
+            t.models.iter().map(|(model, m)| ComparisonRow {
+                model: model.clone(),
+                eval: t.name.clone(),
+                mean_r2: m.mean_r2,
+                dims: m.dims.clone(),
+            })
+        })
+        .collect();
     let summary = FitSummary {
         splits: ds.counts,
         labelled_transitions: ds.labelled_len(),
@@ -242,6 +268,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
             .collect(),
         models: runs,
         metrics: tables,
+        comparison,
         eval_truth_used: truth_used,
         threads: inputs.threads,
     };

@@ -35,7 +35,7 @@
 //! ```text
 //! recon_i  = 0.5 D (ln 2pi + ln s2) + 0.5 |x̂_t1,i - pool^r(x_t1,i)|^2 / s2       (D values)
 //! kl_i     = KL(q(z|t,t+1) || N(0, I))                       (Kingma & Welling 2014, app. B)
-//! action   = (1/M) sum_m (1/n_l) sum_{i<n_l} w_mi sum_a nll(a_ia; mean_mia, lv_mia)
+//! action   = (1/M) sum_m (1/n_l) sum_{i<n_l} w_mi sum_a nll(a_ia; mean_m(z_i)_a, lv_m(z_i)_a)
 //! align    = MMD2_u(mu[..n_l], mu[n_l..])                    (Gretton et al. 2012, eq. 3)
 //! total    = mean_i(recon_i + kl_i) + action_weight * action + align_weight * align
 //! ```
@@ -44,9 +44,12 @@
 //! shared variance at its optimum (the MSE) the reconstruction/KL balance
 //! needs no hand-set weight. `w_mi` are the integer bootstrap counts of
 //! labelled transition `i` in head `m`'s resample (chosen by the caller), so
-//! each head sees its own bootstrap resample. The action heads read the
-//! posterior mean, the same input they get at inference time; their gradient
-//! also shapes the posterior (that is what ties `z` to the robot's actions).
+//! each head sees its own bootstrap resample. In training the action heads
+//! read the sampled latent `z` (so only information that survives the
+//! posterior noise, paid for in KL, can be used: a variational information
+//! bottleneck against memorising clips); at inference they read the
+//! posterior mean. Their gradient also shapes the posterior (that is what
+//! ties `z` to the robot's actions).
 
 use candle_core::{D, Module, Result, Tensor};
 use candle_nn::VarBuilder;
@@ -381,7 +384,11 @@ impl Net {
         let zero = || Tensor::zeros((), mu.dtype(), mu.device());
         let action = match (&batch.actions, n_l) {
             (Some(a), n) if n > 0 => {
-                let mu_l = mu.narrow(0, 0, n)?;
+                // Heads read the sampled latent in training (the posterior
+                // mean at inference): information must survive the posterior
+                // noise to be usable, so the KL term bounds what the heads
+                // can memorise (a variational information bottleneck).
+                let mu_l = z.narrow(0, 0, n)?;
                 let mut sum = zero()?;
                 for (m, head) in self.heads.iter().enumerate() {
                     let (mean, hlv) = head.forward(&mu_l)?;

@@ -240,9 +240,11 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
     let mut current: Option<OpenShard> = None;
     let mut rows_per_set: BTreeMap<String, u64> = BTreeMap::new();
     let mut conf = (0u64, 0.0f64);
-    let mut write_all = || -> Result<(), ShardError> {
-    for (g, group) in order.chunks(job.opts.row_group_rows.max(1) as usize).enumerate() {
-        let batch = pool.install(|| build_batch(&clips, group, job.opts.image, g))?;
+    let groups: Vec<&[(u32, u32)]> = order.chunks(job.opts.row_group_rows.max(1) as usize).collect();
+    let mut write_all = |batches: std::sync::mpsc::Receiver<Result<RecordBatch, ShardError>>| -> Result<(), ShardError> {
+    for group in groups.iter().copied() {
+        // Batches arrive in row-group order from the encoding thread.
+        let batch = batches.recv().expect("one batch per row group")?;
         for &(ci, f) in group {
             let c = &clips[ci as usize];
             *rows_per_set.entry(c.rec.set.clone()).or_default() += 1;
@@ -269,7 +271,23 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
     }
     Ok(())
     };
-    if let Err(e) = write_all() {
+    // Encode the next row group's images while this one is compressed and written.
+    let result = std::thread::scope(|scope| {
+        let (tx, rx) = std::sync::mpsc::sync_channel(1);
+        let (clips, groups, image) = (&clips, &groups, job.opts.image);
+        let pool = &pool;
+        scope.spawn(move || {
+            for (g, group) in groups.iter().enumerate() {
+                let batch = pool.install(|| build_batch(clips, group, image, g));
+                let failed = batch.is_err();
+                if tx.send(batch).is_err() || failed {
+                    break;
+                }
+            }
+        });
+        write_all(rx)
+    });
+    if let Err(e) = result {
         if let Some(open) = current.take() {
             let _ = fs::remove_file(&open.tmp);
         }

@@ -213,7 +213,7 @@ fn shuffle_changes_the_order_but_not_the_rows() {
 /// The fenced block of `lang` in README.md's "Reading the shards" section.
 fn readme_block(lang: &str) -> String {
     let readme = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md"))
-        .expect("README.md exists");
+        .expect("README.md exists (with the \"Reading the shards\" section)");
     let start = readme
         .find("## Reading the shards")
         .expect("README.md has a \"Reading the shards\" section");
@@ -280,7 +280,7 @@ mod bench {
 
     use actuary::label::{FitOutputs, LabelJob, LabelOptions, Split, Standardisation, TransitionBatch, TransitionModel};
     use actuary::model::{Config, Net, SeededInit};
-    use actuary::shard::ShardOptions;
+    use actuary::shard::{ImageEncoding, ShardOptions};
     use actuary::store::{ClipRecord, FrameWriter, write_json_atomic};
     use candle_core::{DType, Device};
 
@@ -294,6 +294,7 @@ mod bench {
         let decode = run.join("decode");
         let _ = std::fs::remove_dir_all(decode.join("clips/human"));
         let mut splits = std::collections::BTreeMap::new();
+        let mut rng = actuary::model::Rng::new(3);
         for c in 0..clips {
             let (set, id) = ("robot", format!("pick-{c:03}"));
             let path = ClipRecord::frames_path(&decode, set, &id);
@@ -304,9 +305,11 @@ mod bench {
                     for x in 0..SIZE {
                         let i = ((y * SIZE + x) * 3) as usize;
                         let inside = (x + t + c as u32) % SIZE < 12 && (y + 2 * t) % SIZE < 12;
-                        f[i] = (x * 3 + c as u32) as u8;
-                        f[i + 1] = if inside { 230 } else { (y * 2 + t) as u8 };
-                        f[i + 2] = ((x + y) * 2) as u8;
+                        // Sensor-like noise of a few levels keeps PNG sizes realistic.
+                        let mut noise = |k: u32| (rng.below(9) as u32 + k) as u8;
+                        f[i] = ((x * 3 + c as u32) as u8).wrapping_add(noise(0));
+                        f[i + 1] = if inside { 230 } else { (y * 2 + t) as u8 }.wrapping_add(noise(0));
+                        f[i + 2] = (((x + y) * 2) as u8).wrapping_add(noise(0));
                     }
                 }
                 w.push(&f).unwrap();
@@ -345,9 +348,13 @@ mod bench {
         let run = std::path::PathBuf::from(std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"));
         let _ = std::fs::remove_dir_all(&run);
         smooth_run(&run, 200, 100);
-        let opts = ShardOptions::default();
-        let dir = run.join("shard");
-        for threads in [1usize, 2] {
+        for (threads, image, name) in [
+            (1usize, ImageEncoding::Png, "png"),
+            (2, ImageEncoding::Png, "png"),
+            (2, ImageEncoding::Raw, "raw"),
+        ] {
+            let opts = ShardOptions { image, ..ShardOptions::default() };
+            let dir = run.join(format!("shard-{name}"));
             let _ = std::fs::remove_dir_all(&dir);
             let job = actuary::shard::ShardJob { run_dir: &run, shard_dir: &dir, opts: &opts, seed: 7, threads };
             let t0 = Instant::now();
@@ -355,7 +362,7 @@ mod bench {
             let secs = t0.elapsed().as_secs_f64();
             let bytes: u64 = s.shards.iter().map(|f| f.bytes).sum();
             println!(
-                "BENCH {{\"what\":\"shard\",\"threads\":{threads},\"rows\":{},\"bytes\":{bytes},\"seconds\":{secs},\"mb_per_s\":{}}}",
+                "BENCH {{\"what\":\"shard\",\"image\":\"{name}\",\"threads\":{threads},\"rows\":{},\"bytes\":{bytes},\"seconds\":{secs},\"mb_per_s\":{}}}",
                 s.rows,
                 bytes as f64 / 1e6 / secs
             );
