@@ -28,6 +28,9 @@ fn main() {
     let threads = arg("--threads", 2);
     let steps = arg("--steps", 30);
     let batch = arg("--batch", 64);
+    if std::env::var("ACTUARY_BENCH_DEFAULT_MALLOC").is_err() {
+        actuary::fit::tune_allocator();
+    }
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
     pool.install(|| run(threads, steps, batch));
 }
@@ -45,7 +48,7 @@ fn run(threads: usize, steps: usize, b: usize) {
     let n_l = b / 2;
     let fb = cfg.width * cfg.height * 3;
     // Smooth random frames (a moving gradient) so activations are not degenerate.
-    let mut make = |rng: &mut Rng| -> Batch {
+    let make = |rng: &mut Rng| -> Batch {
         let mut frames = |shift: f64| -> Vec<u8> {
             (0..b * fb).map(|i| ((i % fb) as f64 * 0.01 + shift + 20.0 * rng.uniform()) as u8).collect()
         };

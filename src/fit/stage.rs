@@ -132,6 +132,7 @@ pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<StageManifest,
 
 /// Fits the models of `inputs.spec` on the aligned clips of `inputs.run_dir`.
 pub fn fit_run(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
+    super::tune_allocator();
     let pool = crate::util::thread_pool(inputs.threads);
     pool.install(|| fit_in_pool(inputs))
 }
