@@ -15,6 +15,7 @@ mod cluster_cmd;
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
+    bound_candle_threads(&cli.command);
     match dispatch(cli.command) {
         Ok(code) => ExitCode::from(code as u8),
         Err(err) => {
@@ -27,6 +28,21 @@ fn main() -> ExitCode {
             }
             ExitCode::from(EXIT_FAILURE as u8)
         }
+    }
+}
+
+/// candle sizes its element-wise worker pool from `CANDLE_NUM_THREADS` (or the
+/// physical core count) when first used; set it from `-j` before any thread
+/// starts so `-j N` bounds every stage, the model included.
+fn bound_candle_threads(command: &Command) {
+    let jobs = match command {
+        Command::Run { jobs, .. } | Command::Merge { jobs, .. } | Command::Submit { jobs, .. } => *jobs,
+        _ => None,
+    };
+    if std::env::var_os("CANDLE_NUM_THREADS").is_none() {
+        let n = default_jobs(jobs);
+        // SAFETY: called first thing in main, before any other thread exists.
+        unsafe { std::env::set_var("CANDLE_NUM_THREADS", n.to_string()) };
     }
 }
 

@@ -17,6 +17,29 @@ use crate::model::Rng;
 /// Batches between reopenings of the aligned view.
 pub const REOPEN_EVERY: u32 = 50;
 
+/// Largest random shift of training pairs, as a fraction of the frame's
+/// shorter side (4 pixels at 64x64). Random-shift augmentation (Kostrikov et
+/// al. 2020, "Image Augmentation Is All You Need", DrQ; Laskin et al. 2020,
+/// RAD): both frames of a pair move by the same whole-pixel offset, with the
+/// edge pixels replicated into the gap, so the motion between them (and the
+/// recorded action) is unchanged while the absolute layout the network could
+/// memorise per clip is not.
+pub const SHIFT_FRACTION: f64 = 1.0 / 16.0;
+
+/// Shifts a `height x width x 3` frame by `(dy, dx)` pixels in place of
+/// `out`, replicating edge pixels (`src` and `out` do not overlap).
+pub fn shift_frame(src: &[u8], out: &mut [u8], width: usize, height: usize, dy: i64, dx: i64) {
+    let clamp = |v: i64, n: usize| v.clamp(0, n as i64 - 1) as usize;
+    for y in 0..height {
+        let sy = clamp(y as i64 - dy, height);
+        for x in 0..width {
+            let sx = clamp(x as i64 - dx, width);
+            let (o, s) = ((y * width + x) * 3, (sy * width + sx) * 3);
+            out[o..o + 3].copy_from_slice(&src[s..s + 3]);
+        }
+    }
+}
+
 /// Which split a clip belongs to.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
@@ -372,6 +395,8 @@ impl Dataset {
         let mut x_t1 = vec![0u8; n * fb];
         let mut actions = Vec::with_capacity(n_l * self.action_dims());
         let mut picks = Vec::with_capacity(n_l);
+        let max_shift = (self.width.min(self.height) as f64 * SHIFT_FRACTION).floor() as u64;
+        let (mut tmp_a, mut tmp_b) = (vec![0u8; fb], vec![0u8; fb]);
         for r in 0..n {
             let (pool, labelled) = if r < n_l {
                 (&self.labelled_train, true)
@@ -381,7 +406,16 @@ impl Dataset {
             let g = rng.below(pool.len() as u64) as usize;
             let (c, i) = pool.locate(g);
             let info = &self.clips[c];
-            self.pair(info, i, &mut x_t[r * fb..(r + 1) * fb], &mut x_t1[r * fb..(r + 1) * fb])?;
+            if max_shift > 0 {
+                let dy = rng.below(2 * max_shift + 1) as i64 - max_shift as i64;
+                let dx = rng.below(2 * max_shift + 1) as i64 - max_shift as i64;
+                self.pair(info, i, &mut tmp_a, &mut tmp_b)?;
+                let (w, h) = (self.width, self.height);
+                shift_frame(&tmp_a, &mut x_t[r * fb..(r + 1) * fb], w, h, dy, dx);
+                shift_frame(&tmp_b, &mut x_t1[r * fb..(r + 1) * fb], w, h, dy, dx);
+            } else {
+                self.pair(info, i, &mut x_t[r * fb..(r + 1) * fb], &mut x_t1[r * fb..(r + 1) * fb])?;
+            }
             if labelled {
                 let row = &self.clip(info).actions().expect("labelled clip has actions")[i];
                 actions.extend(self.standardisation.apply(row));
@@ -425,6 +459,17 @@ mod tests {
         assert!(err.contains("at least 3 are needed"), "{err}");
         let err = split_counts(4, 0.4, 0.4).unwrap_err().to_string();
         assert!(err.contains("at least 5 are needed"), "{err}");
+    }
+
+    #[test]
+    fn shift_moves_pixels_and_replicates_edges() {
+        // 3x2 frame, pixel value = index; shift right by one.
+        let src: Vec<u8> = (0..18).collect();
+        let mut out = vec![0u8; 18];
+        shift_frame(&src, &mut out, 3, 2, 0, 1);
+        assert_eq!(&out[0..9], &[0, 1, 2, 0, 1, 2, 3, 4, 5]);
+        shift_frame(&src, &mut out, 3, 2, 0, 0);
+        assert_eq!(out, src);
     }
 
     #[test]
