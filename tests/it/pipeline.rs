@@ -65,11 +65,24 @@ fn check_passes_on_good_inputs() {
     if !require_ffmpeg() {
         return;
     }
-    let f = fixture(2, 1, "");
+    let f = fixture(3, 1, "");
     let (code, out, err) = actuary(&["check", s(&f.spec)]);
     assert_eq!(code, 0, "stdout:\n{out}\nstderr:\n{err}");
-    assert!(out.contains("set robot: 2 clip(s)") && out.contains("set human: 1 clip(s)"), "{out}");
-    assert!(out.contains("sidecars parsed: 2"), "{out}");
+    assert!(out.contains("set robot: 3 clip(s)") && out.contains("set human: 1 clip(s)"), "{out}");
+    assert!(out.contains("sidecars parsed: 3"), "{out}");
+}
+
+#[test]
+fn check_says_how_many_labelled_clips_the_splits_need() {
+    if !require_ffmpeg() {
+        return;
+    }
+    // Two labelled clips cannot be split by clip into train, calib and holdout.
+    let f = fixture(2, 1, "");
+    let (code, out, _) = actuary(&["check", s(&f.spec)]);
+    assert_eq!(code, 1, "{out}");
+    let line = out.lines().find(|l| l.starts_with("problem:") && l.contains("spec.toml")).unwrap_or_default();
+    assert!(line.contains('3'), "the problem must say 3 clips are needed: {out}");
 }
 
 #[test]
