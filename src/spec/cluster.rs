@@ -381,10 +381,7 @@ mod tests {
     use super::*;
 
     fn resolve_text(text: &str) -> (ClusterOptions, Vec<String>) {
-        let raw: RawCluster = toml::from_str(text).unwrap();
-        let mut p = Problems::new(text);
-        let o = resolve(&raw, &mut p);
-        (o, p.list.iter().map(|x| x.to_string()).collect())
+        crate::spec::checks::resolve_text::<RawCluster, _>(text, resolve)
     }
 
     #[test]

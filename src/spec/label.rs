@@ -4,6 +4,7 @@
 use serde::Deserialize;
 use toml::Spanned;
 
+use super::checks::int_in;
 use super::error::Problems;
 use crate::label::{
     DEFAULT_ALPHA, DEFAULT_BATCH, DEFAULT_CODES, DEFAULT_KMEANS_ITERATIONS, DEFAULT_KMEANS_RESTARTS,
@@ -110,27 +111,12 @@ pub fn resolve(raw: &RawLabel, problems: &mut Problems<'_>) -> LabelOptions {
     }
 }
 
-/// An integer key in `1..=max`.
-fn int_in(key: &str, v: &Option<Spanned<i64>>, default: u32, max: u32, p: &mut Problems<'_>) -> u32 {
-    match v {
-        None => default,
-        Some(s) if *s.get_ref() < 1 || *s.get_ref() > max as i64 => {
-            p.at(key, s.span(), format!("must be an integer from 1 to {max} (got {})", s.get_ref()));
-            default
-        }
-        Some(s) => *s.get_ref() as u32,
-    }
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
 
     fn resolve_text(text: &str) -> (LabelOptions, Vec<String>) {
-        let raw: RawLabel = toml::from_str(text).unwrap();
-        let mut p = Problems::new(text);
-        let o = resolve(&raw, &mut p);
-        (o, p.list.iter().map(|x| x.to_string()).collect())
+        crate::spec::checks::resolve_text::<RawLabel, _>(text, resolve)
     }
 
     #[test]

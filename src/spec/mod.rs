@@ -3,6 +3,7 @@
 //! the spec file. Errors name the file, the key, the line and the column.
 
 pub mod align;
+pub mod checks;
 pub mod cluster;
 pub mod error;
 pub mod fit;

@@ -5,8 +5,8 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use toml::Spanned;
 
+use super::checks::{int_in as positive_u32, positive_f64};
 use super::error::Problems;
 use super::raw::{RawActions, RawDecode, RawSet, RawSpec};
 use super::values::{CropValue, OffsetValue};
@@ -134,28 +134,6 @@ fn resolve_sets(
         p.at("sets", span, "at least one set must have `labelled = true`");
     }
     out
-}
-
-fn positive_f64(key: &str, v: &Option<Spanned<f64>>, default: f64, p: &mut Problems<'_>) -> f64 {
-    match v {
-        None => default,
-        Some(s) if !(s.get_ref().is_finite() && *s.get_ref() > 0.0) => {
-            p.at(key, s.span(), format!("must be a positive number (got {})", s.get_ref()));
-            default
-        }
-        Some(s) => *s.get_ref(),
-    }
-}
-
-fn positive_u32(key: &str, v: &Option<Spanned<i64>>, default: u32, max: u32, p: &mut Problems<'_>) -> u32 {
-    match v {
-        None => default,
-        Some(s) if *s.get_ref() < 1 || *s.get_ref() > max as i64 => {
-            p.at(key, s.span(), format!("must be an integer from 1 to {max} (got {})", s.get_ref()));
-            default
-        }
-        Some(s) => *s.get_ref() as u32,
-    }
 }
 
 fn resolve_decode(raw: RawDecode, p: &mut Problems<'_>) -> DecodeOptions {

@@ -90,10 +90,7 @@ mod tests {
     use super::*;
 
     fn resolve_text(text: &str) -> (ShardOptions, Vec<String>) {
-        let raw: RawShard = toml::from_str(text).unwrap();
-        let mut p = Problems::new(text);
-        let o = resolve(&raw, &mut p);
-        (o, p.list.iter().map(|x| x.to_string()).collect())
+        crate::spec::checks::resolve_text::<RawShard, _>(text, resolve)
     }
 
     #[test]
