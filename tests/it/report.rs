@@ -491,9 +491,66 @@ fn report_opens_in_headless_chromium() {
     std::fs::create_dir_all(&artefacts).unwrap();
     let page = artefacts.join("report.html");
     actuary::report::write_report(&run, &page).unwrap();
+    let png = open_and_check(&browser, &page);
+    let out = artefacts.join("report.png");
+    std::fs::write(&out, &png).unwrap();
+    eprintln!("screenshot kept at {}", out.display());
+}
+
+/// Renders the report of a real (tiny) pipeline run over demo-generator clips
+/// and opens it in Chromium, as the engineer would in the morning.
+#[test]
+fn report_of_a_real_tiny_run_opens_in_headless_chromium() {
+    if !crate::util::require_ffmpeg() {
+        return;
+    }
+    let Some(browser) = browser::Browser::find() else { return };
+    let dir = tempfile::tempdir().unwrap();
+    let opts = actuary::demo::DemoOptions {
+        robot_clips: 5,
+        human_clips: 3,
+        min_frames: 20,
+        max_frames: 30,
+        ..Default::default()
+    };
+    actuary::demo::generate(&dir.path().join("d"), &opts).unwrap();
+    let spec = dir.path().join("spec.toml");
+    std::fs::write(
+        &spec,
+        "out = \"run\"\n[sets.robot]\ndir = \"d/robot\"\nlabelled = true\n[sets.human]\ndir = \"d/human\"\nlabelled = false\n\
+         eval-truth = \"d/human-truth\"\n[decode]\nfps = 10\nsize = [32, 32]\n[actions]\nmap = { dx = \"sum\", dy = \"sum\", grip = \"hold\" }\n\
+         [fit]\nlatent = 4\nwidths = [8, 8, 8]\nhidden = 16\nhead-hidden = 8\nheads = 2\nsteps = 20\nbatch = 8\ncheckpoint-every = 10\n\
+         [label]\ncodes = 4\n",
+    )
+    .unwrap();
+    let (code, _, err) = crate::util::actuary(&["run", spec.to_str().unwrap(), "-j", "2"]);
+    assert_eq!(code, 0, "{err}");
+    let run = dir.path().join("run");
+    let page = run.join("report.html");
+    let (code, _, err) = crate::util::actuary(&["report", run.to_str().unwrap()]);
+    assert_eq!(code, 0, "{err}");
+    let html = std::fs::read_to_string(&page).unwrap();
+    for section in ["Run summary", "Decode", "Align", "Fit", "Label", "Shards"] {
+        assert!(html.contains(section), "report lacks {section}");
+    }
+    assert!(!html.contains("Not available"), "every stage ran, so no section may be missing");
+    let png = open_and_check(&browser, &page);
+    let artefacts = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("..").join("test-artefacts");
+    std::fs::create_dir_all(&artefacts).unwrap();
+    std::fs::write(artefacts.join("report-real.png"), &png).unwrap();
+    if std::env::var("ACTUARY_UPDATE_DOCS").is_ok_and(|v| v == "1") {
+        let docs = Path::new(env!("CARGO_MANIFEST_DIR")).join("docs");
+        std::fs::create_dir_all(&docs).unwrap();
+        std::fs::write(docs.join("report.png"), &png).unwrap();
+    }
+}
+
+/// Opens `page` in Chromium and checks it loaded cleanly: no console errors,
+/// every image decoded, laptop width, a screenshot that is not blank.
+fn open_and_check(browser: &browser::Browser, page: &Path) -> Vec<u8> {
     let profile = tempfile::tempdir().unwrap();
     let session = browser.start(profile.path()).unwrap_or_else(|e| panic!("Chromium itself failed to start (not a page problem): {e}"));
-    let result = session.check_page(&page);
+    let result = session.check_page(page);
     let shot = session.screenshot();
     drop(session);
     let report = result.unwrap_or_else(|e| panic!("the report page failed in Chromium: {e}"));
@@ -508,14 +565,7 @@ fn report_opens_in_headless_chromium() {
         colours.insert(p.0);
     }
     assert!(colours.len() > 50, "screenshot looks blank ({} distinct colours)", colours.len());
-    let out = artefacts.join("report.png");
-    std::fs::write(&out, &png).unwrap();
-    eprintln!("screenshot kept at {}", out.display());
-    if std::env::var("ACTUARY_UPDATE_DOCS").is_ok_and(|v| v == "1") {
-        let docs = Path::new(env!("CARGO_MANIFEST_DIR")).join("docs");
-        std::fs::create_dir_all(&docs).unwrap();
-        std::fs::write(docs.join("report.png"), &png).unwrap();
-    }
+    png
 }
 
 /// A minimal W3C WebDriver client for chromedriver (HTTP/1.1 over a TCP socket).
