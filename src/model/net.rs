@@ -10,7 +10,7 @@
 //! encoder  (frame t)   f_1 = relu(Dense(s2d^S(x_t)))              [B, H/s_1, W/s_1, c_1]
 //!                      f_j = relu(Dense(s2d(f_{j-1})))  j = 2..L  [B, H/s_j, W/s_j, c_j]
 //!                      h   = relu(Dense(flatten(f_L)))            [B, hidden]
-//! posterior q(z|t,t+1) same pyramid on [x_t, x_t1, x_t1 - x_t]     [B, H, W, 9]
+//! posterior q(z|t,t+1) same pyramid on [x_t, x_t1, g (x_t1 - x_t)]  [B, H, W, 9], g = DIFF_GAIN
 //!                      mu, lv = Dense(g), Dense(g)                [B, k] each
 //! prior p(z)           N(0, I)
 //! z = mu + exp(lv/2) * eps,  eps ~ N(0, I) given by the caller    [B, k]
@@ -44,12 +44,14 @@
 //! shared variance at its optimum (the MSE) the reconstruction/KL balance
 //! needs no hand-set weight. `w_mi` are the integer bootstrap counts of
 //! labelled transition `i` in head `m`'s resample (chosen by the caller), so
-//! each head sees its own bootstrap resample. In training the action heads
-//! read the sampled latent `z` (so only information that survives the
-//! posterior noise, paid for in KL, can be used: a variational information
-//! bottleneck against memorising clips); at inference they read the
-//! posterior mean. Their gradient also shapes the posterior (that is what
-//! ties `z` to the robot's actions).
+//! each head sees its own bootstrap resample. The action heads read the
+//! posterior mean `mu`, in training as at inference. (Reading the sampled
+//! `z` was tried as an information bottleneck, but the KL term is tiny next
+//! to the reconstruction NLL, so it bounded nothing and the noise only slowed
+//! the heads: on the demo, 300 steps, holdout dx R^2 0.68 -> 0.82 with `mu`.)
+//! Clip memorisation is countered by random-shift augmentation of the
+//! training pairs instead (`crate::fit` data sampling). The heads' gradient
+//! also shapes the posterior (that is what ties `z` to the robot's actions).
 
 use candle_core::{D, Module, Result, Tensor};
 use candle_nn::VarBuilder;
@@ -62,6 +64,12 @@ use super::{Config, ModelError};
 
 /// Bounds for the action heads' log-variance (keeps `exp(-lv)` finite).
 pub const HEAD_LOGVAR_RANGE: (f64, f64) = (-12.0, 8.0);
+/// Gain on the frame difference fed to the posterior. Frame differences are
+/// zero almost everywhere and small where the scene moves, so without a gain
+/// the motion channels are a small part of the first layer's input next to
+/// the two frames; scaling them up is input standardisation (common
+/// practice, no source; the value is a round number, not fitted).
+pub const DIFF_GAIN: f64 = 4.0;
 /// Bounds for the posterior's log-variance.
 pub const POSTERIOR_LOGVAR_RANGE: (f64, f64) = (-16.0, 8.0);
 
@@ -124,7 +132,7 @@ pub struct Posterior {
 impl Posterior {
     /// `(mu, logvar)`, each `[B, latent]`, from frames `[B, H, W, 3]` in [-1, 1].
     pub fn forward(&self, x_t: &Tensor, x_t1: &Tensor) -> Result<(Tensor, Tensor)> {
-        let diff = (x_t1 - x_t)?;
+        let diff = ((x_t1 - x_t)? * DIFF_GAIN)?;
         let input = Tensor::cat(&[x_t, x_t1, &diff], 3)?;
         let (_, g) = self.pyramid.forward(&input)?;
         let mu = self.mu.forward(&g)?;
@@ -384,11 +392,9 @@ impl Net {
         let zero = || Tensor::zeros((), mu.dtype(), mu.device());
         let action = match (&batch.actions, n_l) {
             (Some(a), n) if n > 0 => {
-                // Heads read the sampled latent in training (the posterior
-                // mean at inference): information must survive the posterior
-                // noise to be usable, so the KL term bounds what the heads
-                // can memorise (a variational information bottleneck).
-                let mu_l = z.narrow(0, 0, n)?;
+                // Heads read the posterior mean, as at inference (see the
+                // module docs for why not the sampled latent).
+                let mu_l = mu.narrow(0, 0, n)?;
                 let mut sum = zero()?;
                 for (m, head) in self.heads.iter().enumerate() {
                     let (mean, hlv) = head.forward(&mu_l)?;
