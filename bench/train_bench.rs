@@ -9,9 +9,7 @@
 
 use std::time::Instant;
 
-use actuary::model::{
-    self, AdamW, AdamWParams, Batch, Config, LossOptions, Rng, SeededInit,
-};
+use actuary::model::{self, AdamW, AdamWParams, Batch, Config, LossOptions, Rng, SeededInit};
 use candle_core::{DType, Device, Tensor};
 use candle_nn::VarMap;
 
@@ -31,7 +29,10 @@ fn main() {
     if std::env::var("ACTUARY_BENCH_DEFAULT_MALLOC").is_err() {
         actuary::fit::tune_allocator();
     }
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .build()
+        .unwrap();
     pool.install(|| run(threads, steps, batch));
 }
 
@@ -40,7 +41,13 @@ fn run(threads: usize, steps: usize, b: usize) {
     let dev = Device::Cpu;
     let map = VarMap::new();
     let net = model::Net::new(&cfg, SeededInit::var_builder(&map, 1, DType::F32, &dev)).unwrap();
-    let mut vars: Vec<_> = map.data().lock().unwrap().iter().map(|(k, v)| (k.clone(), v.clone())).collect();
+    let mut vars: Vec<_> = map
+        .data()
+        .lock()
+        .unwrap()
+        .iter()
+        .map(|(k, v)| (k.clone(), v.clone()))
+        .collect();
     vars.sort_by(|a, b| a.0.cmp(&b.0));
     let params: usize = vars.iter().map(|(_, v)| v.elem_count()).sum();
     let mut opt = AdamW::new(vars, AdamWParams::default());
@@ -50,12 +57,22 @@ fn run(threads: usize, steps: usize, b: usize) {
     // Smooth random frames (a moving gradient) so activations are not degenerate.
     let make = |rng: &mut Rng| -> Batch {
         let mut frames = |shift: f64| -> Vec<u8> {
-            (0..b * fb).map(|i| ((i % fb) as f64 * 0.01 + shift + 20.0 * rng.uniform()) as u8).collect()
+            (0..b * fb)
+                .map(|i| ((i % fb) as f64 * 0.01 + shift + 20.0 * rng.uniform()) as u8)
+                .collect()
         };
         let (x0, x1) = (frames(0.0), frames(1.0));
-        let actions: Vec<f32> = rng.normals(n_l * cfg.action_dims).into_iter().map(|v| v as f32).collect();
+        let actions: Vec<f32> = rng
+            .normals(n_l * cfg.action_dims)
+            .into_iter()
+            .map(|v| v as f32)
+            .collect();
         let boot: Vec<f32> = (0..cfg.heads * n_l).map(|_| rng.below(3) as f32).collect();
-        let eps: Vec<f32> = rng.normals(b * cfg.latent).into_iter().map(|v| v as f32).collect();
+        let eps: Vec<f32> = rng
+            .normals(b * cfg.latent)
+            .into_iter()
+            .map(|v| v as f32)
+            .collect();
         Batch {
             x_t: model::frames_to_tensor(x0, b, cfg.height, cfg.width, DType::F32, &dev).unwrap(),
             x_t1: model::frames_to_tensor(x1, b, cfg.height, cfg.width, DType::F32, &dev).unwrap(),

@@ -95,7 +95,10 @@ fn join(names: &[String]) -> String {
 pub enum ActionsError {
     /// The file could not be opened or read.
     #[error("cannot read action sidecar {}: {source}", path.display())]
-    Io { path: PathBuf, source: std::io::Error },
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
     /// A CSV line is not UTF-8.
     #[error("action sidecar {}, {at}: not UTF-8 text", path.display())]
     NotUtf8 { path: PathBuf, at: Place },
@@ -104,16 +107,28 @@ pub enum ActionsError {
     MissingHeader { path: PathBuf, at: Place },
     /// The first column is not `t`.
     #[error("action sidecar {}, {at}: first column must be `t`, found `{found}`", path.display())]
-    FirstColumn { path: PathBuf, at: Place, found: String },
+    FirstColumn {
+        path: PathBuf,
+        at: Place,
+        found: String,
+    },
     /// The header names no action dimension.
     #[error("action sidecar {}, {at}: header has no action dimensions after `t`", path.display())]
     NoDims { path: PathBuf, at: Place },
     /// A header column has an empty name.
     #[error("action sidecar {}, {at}: column {column} of the header has no name", path.display())]
-    EmptyName { path: PathBuf, at: Place, column: usize },
+    EmptyName {
+        path: PathBuf,
+        at: Place,
+        column: usize,
+    },
     /// Two header columns share a name.
     #[error("action sidecar {}, {at}: column name `{name}` appears twice in the header", path.display())]
-    DuplicateDim { path: PathBuf, at: Place, name: String },
+    DuplicateDim {
+        path: PathBuf,
+        at: Place,
+        name: String,
+    },
     /// The header is followed by no data row.
     #[error("action sidecar {}, {at}: no data rows (a sidecar needs at least one)", path.display())]
     NoRows { path: PathBuf, at: Place },
@@ -122,22 +137,50 @@ pub enum ActionsError {
     BlankLine { path: PathBuf, at: Place },
     /// A row has the wrong number of cells.
     #[error("action sidecar {}, {at}: expected {expected} columns as in the header, found {found}", path.display())]
-    ColumnCount { path: PathBuf, at: Place, expected: usize, found: usize },
+    ColumnCount {
+        path: PathBuf,
+        at: Place,
+        expected: usize,
+        found: usize,
+    },
     /// A cell is not a number.
     #[error("action sidecar {}, {at}: column `{column}`: `{cell}` is not a number", path.display())]
-    NotNumber { path: PathBuf, at: Place, column: String, cell: String },
+    NotNumber {
+        path: PathBuf,
+        at: Place,
+        column: String,
+        cell: String,
+    },
     /// A cell is NaN or infinite.
     #[error("action sidecar {}, {at}: column `{column}` is {value} (values must be finite)", path.display())]
-    NotFinite { path: PathBuf, at: Place, column: String, value: f64 },
+    NotFinite {
+        path: PathBuf,
+        at: Place,
+        column: String,
+        value: f64,
+    },
     /// `t` does not increase strictly.
     #[error("action sidecar {}, {at}: t = {t} does not increase (previous row t = {previous}); rows must be strictly increasing in t", path.display())]
-    NotIncreasing { path: PathBuf, at: Place, t: f64, previous: f64 },
+    NotIncreasing {
+        path: PathBuf,
+        at: Place,
+        t: f64,
+        previous: f64,
+    },
     /// A Parquet column has an unsupported type.
     #[error("action sidecar {}, schema: column `{column}` has type {found}; expected float64, float32 or an integer type", path.display())]
-    ColumnType { path: PathBuf, column: String, found: DataType },
+    ColumnType {
+        path: PathBuf,
+        column: String,
+        found: DataType,
+    },
     /// A Parquet cell is null.
     #[error("action sidecar {}, {at}: column `{column}` is null", path.display())]
-    Null { path: PathBuf, at: Place, column: String },
+    Null {
+        path: PathBuf,
+        at: Place,
+        column: String,
+    },
     /// The Parquet reader failed.
     #[error("cannot read Parquet action sidecar {}: {source}", path.display())]
     Parquet { path: PathBuf, source: ParquetError },
@@ -146,13 +189,27 @@ pub enum ActionsError {
     Arrow { path: PathBuf, source: ArrowError },
     /// A sidecar's dimensions differ from the set's.
     #[error("action sidecar {}: dimensions [{}] differ from the set's [{}] (every sidecar of a set has the same header)", path.display(), join(found), join(expected))]
-    HeaderMismatch { path: PathBuf, expected: Vec<String>, found: Vec<String> },
+    HeaderMismatch {
+        path: PathBuf,
+        expected: Vec<String>,
+        found: Vec<String>,
+    },
     /// The spec's map names dimensions the header lacks.
-    #[error("`actions.map` names dimension(s) [{}] that the sidecar header lacks (it has [{}])", join(names), join(header))]
-    UnknownMapDim { names: Vec<String>, header: Vec<String> },
+    #[error(
+        "`actions.map` names dimension(s) [{}] that the sidecar header lacks (it has [{}])",
+        join(names),
+        join(header)
+    )]
+    UnknownMapDim {
+        names: Vec<String>,
+        header: Vec<String>,
+    },
     /// Mapping a sidecar failed.
     #[error("action sidecar {}: {source}", path.display())]
-    Map { path: PathBuf, source: Box<ActionsError> },
+    Map {
+        path: PathBuf,
+        source: Box<ActionsError>,
+    },
     /// The number of rules differs from the number of dimensions.
     #[error("{rules} mapping rules for {dims} action dimensions")]
     RuleCount { rules: usize, dims: usize },
@@ -167,9 +224,16 @@ pub enum ActionsError {
     EmptySeries,
     /// A series whose slices disagree in length.
     #[error("series shape mismatch: {rows} starts, {ends} ends, {values} values for {dims} dims")]
-    SeriesShape { rows: usize, ends: usize, values: usize, dims: usize },
+    SeriesShape {
+        rows: usize,
+        ends: usize,
+        values: usize,
+        dims: usize,
+    },
     /// A series row that is not finite or not ordered.
-    #[error("series row {row} (start {start}, end {end}) is not finite, ends before it starts, or overlaps the next row")]
+    #[error(
+        "series row {row} (start {start}, end {end}) is not finite, ends before it starts, or overlaps the next row"
+    )]
     BadSeriesRow { row: usize, start: f64, end: f64 },
     /// A target interval that is not finite or empty.
     #[error("target interval {index} [{start}, {end}) is not finite or empty")]
@@ -300,10 +364,18 @@ fn check_header(path: &Path, at: Place, names: &[String]) -> Result<Vec<String>,
                 found: first.clone(),
             });
         }
-        None => return Err(ActionsError::MissingHeader { path: path_buf(), at }),
+        None => {
+            return Err(ActionsError::MissingHeader {
+                path: path_buf(),
+                at,
+            });
+        }
     }
     if names.len() < 2 {
-        return Err(ActionsError::NoDims { path: path_buf(), at });
+        return Err(ActionsError::NoDims {
+            path: path_buf(),
+            at,
+        });
     }
     let mut seen = HashSet::new();
     for (i, name) in names.iter().enumerate() {

@@ -178,7 +178,9 @@ pub enum AlignError {
         dir: PathBuf,
     },
     /// Decoded clips of different frame sizes or rates.
-    #[error("align: clip {set}/{id} is {width}x{height} at {fps} fps, other clips are {want_width}x{want_height} at {want_fps} fps")]
+    #[error(
+        "align: clip {set}/{id} is {width}x{height} at {fps} fps, other clips are {want_width}x{want_height} at {want_fps} fps"
+    )]
     Mismatch {
         /// Clip-set name.
         set: String,

@@ -49,7 +49,11 @@ pub fn check_inputs(spec: &Spec, threads: usize) -> CheckReport {
                 if list.is_empty() {
                     report.problems.push(InputProblem {
                         path: set.dir.clone(),
-                        message: format!("set `{}` has no clips ({})", set.name, inputs::CLIP_EXTENSIONS.join(", ")),
+                        message: format!(
+                            "set `{}` has no clips ({})",
+                            set.name,
+                            inputs::CLIP_EXTENSIONS.join(", ")
+                        ),
                     });
                 }
                 clips.extend(list);
@@ -75,8 +79,8 @@ pub fn check_inputs(spec: &Spec, threads: usize) -> CheckReport {
             });
         }
     }
-    let results: Vec<ClipCheck> =
-        crate::util::thread_pool(threads).install(|| clips.par_iter().map(|c| check_clip(spec, c)).collect());
+    let results: Vec<ClipCheck> = crate::util::thread_pool(threads)
+        .install(|| clips.par_iter().map(|c| check_clip(spec, c)).collect());
     let mut headers: BTreeMap<String, (Vec<String>, PathBuf)> = BTreeMap::new();
     for (clip, result) in clips.iter().zip(results) {
         report.problems.extend(result.problems);
@@ -114,7 +118,9 @@ pub fn check_inputs(spec: &Spec, threads: usize) -> CheckReport {
     // The fit stage splits labelled clips by clip into train, calib and holdout.
     let labelled = clips.iter().filter(|c| c.labelled).count();
     if labelled > 0 {
-        if let Err(e) = crate::fit::split_counts(labelled, spec.fit.calib_fraction, spec.fit.holdout_fraction) {
+        if let Err(e) =
+            crate::fit::split_counts(labelled, spec.fit.calib_fraction, spec.fit.holdout_fraction)
+        {
             report.problems.push(InputProblem {
                 path: spec.path.clone(),
                 message: e.to_string(),
@@ -125,7 +131,9 @@ pub fn check_inputs(spec: &Spec, threads: usize) -> CheckReport {
     if dims.windows(2).any(|w| w[0] != w[1]) {
         report.problems.push(InputProblem {
             path: spec.path.clone(),
-            message: "labelled sets have different action dimensions; they must share one action space".into(),
+            message:
+                "labelled sets have different action dimensions; they must share one action space"
+                    .into(),
         });
     }
     report
@@ -151,7 +159,8 @@ fn check_clip(spec: &Spec, clip: &ClipInput) -> ClipCheck {
                 path: clip.path.clone(),
                 message: format!(
                     "labelled clip has no sidecar (expected {} or .actions.parquet)",
-                    crate::store::clips::with_suffix(&clip.path.with_extension(""), ".actions.csv").display()
+                    crate::store::clips::with_suffix(&clip.path.with_extension(""), ".actions.csv")
+                        .display()
                 ),
             }),
             Some(path) => match crate::actions::read_sidecar(path) {

@@ -48,7 +48,12 @@ pub enum Command {
         jobs: Option<usize>,
         /// With --part: run only this partitioned stage (decode or label) for
         /// one part; the stages before it must be done.
-        #[arg(long, value_name = "STAGE", requires = "part", conflicts_with = "until")]
+        #[arg(
+            long,
+            value_name = "STAGE",
+            requires = "part",
+            conflicts_with = "until"
+        )]
         stage: Option<String>,
         /// With --stage: run part K of N (0-based, e.g. 2/8). The part writes
         /// its clips' outputs and RUN/STAGE/parts/K-of-N.json instead of the

@@ -30,7 +30,9 @@ pub enum ClusterError {
     #[error("bad part `{0}`: expected K/N with 0 <= K < N, e.g. 0/4")]
     BadPart(String),
     /// The previous stage has not finished with the current settings.
-    #[error("the {stage} stage needs the {previous} stage finished first ({path} is missing or was made from other settings or inputs)")]
+    #[error(
+        "the {stage} stage needs the {previous} stage finished first ({path} is missing or was made from other settings or inputs)"
+    )]
     PreviousMissing {
         /// The stage to run.
         stage: Stage,
@@ -52,7 +54,9 @@ pub enum ClusterError {
         dir: PathBuf,
     },
     /// A part was made from other settings or inputs.
-    #[error("cannot merge the {stage} stage: {path} was made from other settings or inputs (key {found}, expected {expected}); rerun that part")]
+    #[error(
+        "cannot merge the {stage} stage: {path} was made from other settings or inputs (key {found}, expected {expected}); rerun that part"
+    )]
     PartStale {
         /// The stage.
         stage: Stage,

@@ -11,8 +11,9 @@ use actuary::runner::Stage;
 use actuary::spec::Spec;
 
 fn stage_arg(name: &str) -> Result<Stage> {
-    let stage = Stage::parse(name)
-        .with_context(|| format!("unknown stage `{name}` (allowed: decode, align, fit, label, shard)"))?;
+    let stage = Stage::parse(name).with_context(|| {
+        format!("unknown stage `{name}` (allowed: decode, align, fit, label, shard)")
+    })?;
     if !cluster::is_partitioned(stage) {
         bail!("the {stage} stage does not run in parts (only decode and label do)");
     }
@@ -52,11 +53,20 @@ pub fn merge(spec: &Path, stage: &str, parts: Option<u32>, threads: usize) -> Re
 }
 
 /// `actuary submit SPEC [--parts N] [--until STAGE] [--dry-run]`.
-pub fn submit(spec: &Path, parts: Option<u32>, until: Option<&str>, dry_run: bool, threads: usize) -> Result<i32> {
+pub fn submit(
+    spec: &Path,
+    parts: Option<u32>,
+    until: Option<&str>,
+    dry_run: bool,
+    threads: usize,
+) -> Result<i32> {
     let until = match until {
         None => Stage::Shard,
-        Some(name) => Stage::parse(name)
-            .with_context(|| format!("unknown stage `{name}` for --until (allowed: decode, align, fit, label, shard)"))?,
+        Some(name) => Stage::parse(name).with_context(|| {
+            format!(
+                "unknown stage `{name}` for --until (allowed: decode, align, fit, label, shard)"
+            )
+        })?,
     };
     let spec = Spec::load(spec)?;
     let parts = parts.unwrap_or(spec.cluster.parts);
@@ -88,16 +98,25 @@ pub fn submit(spec: &Path, parts: Option<u32>, until: Option<&str>, dry_run: boo
 /// `actuary publish SPEC [--to URL]`.
 pub fn publish(spec: &Path, to: Option<&str>) -> Result<i32> {
     let spec = Spec::load(spec)?;
-    let Some(url) = to.map(str::to_string).or_else(|| spec.cluster.publish.clone()) else {
+    let Some(url) = to
+        .map(str::to_string)
+        .or_else(|| spec.cluster.publish.clone())
+    else {
         bail!("no destination: pass --to URL or set `publish` in the spec's [cluster] table");
     };
     let dir = spec.out.join("shard");
     if !actuary::store::StageManifest::path(&spec.out, "shard").is_file() {
-        bail!("{}: no shard manifest (run the shard stage first)", dir.display());
+        bail!(
+            "{}: no shard manifest (run the shard stage first)",
+            dir.display()
+        );
     }
     let report = actuary::storage::publish(&dir, &url, &spec.cluster.store)?;
     if report.already {
-        println!("{}: already published with the same files, nothing uploaded", report.url);
+        println!(
+            "{}: already published with the same files, nothing uploaded",
+            report.url
+        );
     } else {
         println!(
             "{}: published {} file(s), {} bytes, commit marker {}",

@@ -52,12 +52,8 @@ pub enum ExportError {
 /// Encodes RGB bytes as PNG (deterministic: fixed compression and filter).
 pub fn encode_png(rgb: &[u8], width: u32, height: u32) -> Result<Vec<u8>, image::ImageError> {
     let mut out = Vec::with_capacity(rgb.len() / 2 + 64);
-    PngEncoder::new_with_quality(&mut out, CompressionType::Fast, FilterType::Adaptive).write_image(
-        rgb,
-        width,
-        height,
-        image::ExtendedColorType::Rgb8,
-    )?;
+    PngEncoder::new_with_quality(&mut out, CompressionType::Fast, FilterType::Adaptive)
+        .write_image(rgb, width, height, image::ExtendedColorType::Rgb8)?;
     Ok(out)
 }
 
@@ -100,20 +96,32 @@ pub fn find_clip(run: &Path, id: &str, set: Option<&str>) -> Result<ClipRecord, 
 }
 
 /// Writes every frame of clip `id` as `dir/000000.png`, ...; returns the count.
-pub fn export_frames(run: &Path, id: &str, set: Option<&str>, dir: &Path) -> Result<usize, ExportError> {
+pub fn export_frames(
+    run: &Path,
+    id: &str,
+    set: Option<&str>,
+    dir: &Path,
+) -> Result<usize, ExportError> {
     let record = find_clip(run, id, set)?;
-    let reader = FrameReader::open(&ClipRecord::frames_path(&run.join("decode"), &record.set, &record.id))?;
+    let reader = FrameReader::open(&ClipRecord::frames_path(
+        &run.join("decode"),
+        &record.set,
+        &record.id,
+    ))?;
     std::fs::create_dir_all(dir).map_err(|source| ExportError::Io {
         path: dir.to_path_buf(),
         source,
     })?;
     for k in 0..reader.len() {
         let path = dir.join(format!("{k:06}.png"));
-        let png = encode_png(reader.frame(k), reader.width(), reader.height()).map_err(|e| ExportError::Png {
-            path: path.clone(),
-            message: e.to_string(),
+        let png = encode_png(reader.frame(k), reader.width(), reader.height()).map_err(|e| {
+            ExportError::Png {
+                path: path.clone(),
+                message: e.to_string(),
+            }
         })?;
-        crate::store::write_atomic(&path, &png).map_err(|source| ExportError::Io { path, source })?;
+        crate::store::write_atomic(&path, &png)
+            .map_err(|source| ExportError::Io { path, source })?;
     }
     Ok(reader.len())
 }

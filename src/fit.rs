@@ -35,9 +35,13 @@ use serde::{Deserialize, Serialize};
 pub use checkpoint::CHECKPOINT_FORMAT;
 pub use data::{Split, SplitCounts, Standardisation, split_counts};
 pub use error::FitError;
-pub use fitted::{ClipSplit, FittedModel, HeadOutput, InferOutput, LABELLED_ONLY, MODEL_FILE, ModelInfo, SEMI};
+pub use fitted::{
+    ClipSplit, FittedModel, HeadOutput, InferOutput, LABELLED_ONLY, MODEL_FILE, ModelInfo, SEMI,
+};
 pub use metrics::{DimMetrics, Metrics, ModelMetrics};
-pub use stage::{ComparisonRow, FitInputs, FitSummary, METRICS_FILE, ModelRun, fit_run, inspect_text, run_stage};
+pub use stage::{
+    ComparisonRow, FitInputs, FitSummary, METRICS_FILE, ModelRun, fit_run, inspect_text, run_stage,
+};
 
 use crate::model::{self, SharedVariance};
 

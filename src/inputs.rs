@@ -79,13 +79,20 @@ pub fn list_set(set: &SetSpec) -> Result<Vec<ClipInput>, InputsError> {
         .into_iter()
         .filter(|p| is_clip(p))
         .map(|path| {
-            let rel = path.strip_prefix(&set.dir).unwrap_or(&path).with_extension("");
+            let rel = path
+                .strip_prefix(&set.dir)
+                .unwrap_or(&path)
+                .with_extension("");
             let id = rel
                 .components()
                 .map(|c| c.as_os_str().to_string_lossy().into_owned())
                 .collect::<Vec<_>>()
                 .join("/");
-            let sidecar = if set.labelled { crate::actions::sidecar_for(&path) } else { None };
+            let sidecar = if set.labelled {
+                crate::actions::sidecar_for(&path)
+            } else {
+                None
+            };
             ClipInput {
                 set: set.name.clone(),
                 labelled: set.labelled,

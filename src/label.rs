@@ -23,7 +23,9 @@ use std::path::PathBuf;
 
 use serde::Serialize;
 
-pub use model::{FitOutputs, FramePrep, Split, Splits, Standardisation, TransitionBatch, TransitionModel};
+pub use model::{
+    FitOutputs, FramePrep, Split, Splits, Standardisation, TransitionBatch, TransitionModel,
+};
 pub use output::{CalibrationFigures, ClipLabels, CodesTable};
 pub use stage::{LabelJob, LabelSummary, label_run};
 
@@ -167,7 +169,9 @@ pub fn load_fit(run_dir: &std::path::Path) -> Result<FitOutputs, LabelError> {
 }
 
 /// Runs the label stage.
-pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::StageManifest, LabelError> {
+pub fn run_stage(
+    ctx: &crate::runner::StageContext<'_>,
+) -> Result<crate::store::StageManifest, LabelError> {
     let fit = load_fit(&ctx.run_dir)?;
     let job = LabelJob {
         run_dir: &ctx.run_dir,
@@ -179,18 +183,24 @@ pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::
     };
     // A part of a partitioned run labels only its own clips (see `crate::cluster`).
     let include = |set: &str, id: &str| ctx.includes(set, id);
-    let part: Option<stage::PartFilter<'_>> = ctx.partition.map(|_| &include as stage::PartFilter<'_>);
-    let summary = stage::label_run_part(&job, &fit, &fitted::AlignColour::load(&ctx.run_dir), part)?;
+    let part: Option<stage::PartFilter<'_>> =
+        ctx.partition.map(|_| &include as stage::PartFilter<'_>);
+    let summary =
+        stage::label_run_part(&job, &fit, &fitted::AlignColour::load(&ctx.run_dir), part)?;
     Ok(manifest_of(&summary))
 }
 
 /// The stage manifest of a label run (the runner fills key and timings).
 pub fn manifest_of(summary: &LabelSummary) -> crate::store::StageManifest {
     let mut m = crate::store::StageManifest::default();
-    m.counts.insert("clips".into(), summary.clips_labelled + summary.clips_reused);
+    m.counts.insert(
+        "clips".into(),
+        summary.clips_labelled + summary.clips_reused,
+    );
     m.counts.insert("clips_reused".into(), summary.clips_reused);
     m.counts.insert("transitions".into(), summary.transitions);
-    m.counts.insert("transitions_inferred".into(), summary.transitions_inferred);
+    m.counts
+        .insert("transitions_inferred".into(), summary.transitions_inferred);
     m.counts.insert("codes_used".into(), summary.codes_used);
     m.timings.insert("fit_pass_s".into(), summary.seconds.0);
     m.timings.insert("label_pass_s".into(), summary.seconds.1);

@@ -25,8 +25,8 @@
 pub mod actions;
 pub mod align;
 pub mod check;
-pub mod cluster;
 pub mod cli;
+pub mod cluster;
 pub mod decode;
 pub mod demo;
 pub mod error;

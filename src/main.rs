@@ -36,7 +36,9 @@ fn main() -> ExitCode {
 /// starts so `-j N` bounds every stage, the model included.
 fn bound_candle_threads(command: &Command) {
     let jobs = match command {
-        Command::Run { jobs, .. } | Command::Merge { jobs, .. } | Command::Submit { jobs, .. } => *jobs,
+        Command::Run { jobs, .. } | Command::Merge { jobs, .. } | Command::Submit { jobs, .. } => {
+            *jobs
+        }
         _ => None,
     };
     if std::env::var_os("CANDLE_NUM_THREADS").is_none() {
@@ -108,12 +110,16 @@ fn dispatch(command: Command) -> Result<i32> {
             endpoint,
             allow_http,
         } => cluster_cmd::pull(&url, &dir, endpoint, allow_http),
-        Command::Run { spec, until, jobs, .. } => {
+        Command::Run {
+            spec, until, jobs, ..
+        } => {
             let until = match until {
                 None => Stage::Shard,
                 Some(name) => match Stage::parse(&name) {
                     Some(s) => s,
-                    None => bail!("unknown stage `{name}` for --until (allowed: decode, align, fit, label, shard)"),
+                    None => bail!(
+                        "unknown stage `{name}` for --until (allowed: decode, align, fit, label, shard)"
+                    ),
                 },
             };
             let spec = Spec::load(&spec)?;
@@ -147,7 +153,12 @@ fn dispatch(command: Command) -> Result<i32> {
             print!("{text}");
             Ok(0)
         }
-        Command::ExportFrames { run, clip, dir, set } => {
+        Command::ExportFrames {
+            run,
+            clip,
+            dir,
+            set,
+        } => {
             let n = actuary::export::export_frames(&run, &clip, set.as_deref(), &dir)?;
             println!("wrote {n} frame(s) to {}", dir.display());
             Ok(0)

@@ -37,7 +37,13 @@ pub enum Stage {
 
 impl Stage {
     /// Every stage, in order.
-    pub const ALL: [Stage; 5] = [Stage::Decode, Stage::Align, Stage::Fit, Stage::Label, Stage::Shard];
+    pub const ALL: [Stage; 5] = [
+        Stage::Decode,
+        Stage::Align,
+        Stage::Fit,
+        Stage::Label,
+        Stage::Shard,
+    ];
 
     /// The stage's folder name under `RUN/`.
     pub fn name(self) -> &'static str {
@@ -191,12 +197,11 @@ pub fn run(spec: &Spec, opts: &RunOptions) -> Result<Vec<StageOutcome>, RunError
     for stage in Stage::ALL.into_iter().filter(|s| *s <= opts.until) {
         let settings_hash = settings_hash(spec, stage);
         let key = stage_key(stage, &settings_hash, &previous_key, &clips);
-        let existing = StageManifest::read(&spec.out, stage.name()).map_err(|source| {
-            RunError::Manifest {
+        let existing =
+            StageManifest::read(&spec.out, stage.name()).map_err(|source| RunError::Manifest {
                 path: StageManifest::path(&spec.out, stage.name()),
                 source,
-            }
-        })?;
+            })?;
         let started = Instant::now();
         if existing.as_ref().is_some_and(|m| m.key == key) {
             eprintln!("{stage}: up to date, skipped");
@@ -229,19 +234,26 @@ pub fn run(spec: &Spec, opts: &RunOptions) -> Result<Vec<StageOutcome>, RunError
         manifest.key = key.clone();
         manifest.settings_hash = settings_hash;
         // The spec's text hash and path, for `inspect` and the report.
-        manifest.inputs.insert("spec".into(), spec.text_hash.clone());
-        manifest.inputs.insert("spec-path".into(), spec.path.display().to_string());
+        manifest
+            .inputs
+            .insert("spec".into(), spec.text_hash.clone());
+        manifest
+            .inputs
+            .insert("spec-path".into(), spec.path.display().to_string());
         if !previous_key.is_empty() {
-            manifest
-                .inputs
-                .insert(format!("{}-stage-key", stage.previous().map_or("", Stage::name)), previous_key.clone());
+            manifest.inputs.insert(
+                format!("{}-stage-key", stage.previous().map_or("", Stage::name)),
+                previous_key.clone(),
+            );
         }
         let seconds = started.elapsed().as_secs_f64();
         manifest.timings.insert("total_s".into(), seconds);
-        manifest.write(&spec.out).map_err(|source| RunError::Manifest {
-            path: StageManifest::path(&spec.out, stage.name()),
-            source,
-        })?;
+        manifest
+            .write(&spec.out)
+            .map_err(|source| RunError::Manifest {
+                path: StageManifest::path(&spec.out, stage.name()),
+                source,
+            })?;
         eprintln!("{stage}: done in {seconds:.1} s");
         outcomes.push(StageOutcome {
             stage,
@@ -319,7 +331,12 @@ pub fn settings_hash(spec: &Spec, stage: Stage) -> String {
 
 /// The key of `stage` from its settings hash, the previous stage's key and
 /// (for decode) every clip's fingerprints.
-pub fn stage_key(stage: Stage, settings: &str, previous: &str, clips: &[FingerprintedClip]) -> String {
+pub fn stage_key(
+    stage: Stage,
+    settings: &str,
+    previous: &str,
+    clips: &[FingerprintedClip],
+) -> String {
     let inputs: Vec<(&str, &str, &str, Option<&str>)> = if stage == Stage::Decode {
         clips
             .iter()

@@ -14,17 +14,13 @@ pub mod inspect;
 pub mod schema;
 pub mod writer;
 
-pub use schema::schema;
 pub use inspect::{ShardInspection, inspect_shards};
+pub use schema::schema;
 pub use writer::{ShardFile, ShardJob, ShardSummary, write_shards};
 
 use std::path::PathBuf;
 
 use serde::{Deserialize, Serialize};
-
-
-
-
 
 /// Default rows per Parquet row group.
 pub const DEFAULT_ROW_GROUP_ROWS: u32 = 1024;
@@ -131,7 +127,9 @@ pub enum ShardError {
         message: String,
     },
     /// A row group's images would overflow the binary column's 32-bit offsets.
-    #[error("row group {group} holds {bytes} image bytes, more than a binary column allows; lower `shard.row-group-rows`")]
+    #[error(
+        "row group {group} holds {bytes} image bytes, more than a binary column allows; lower `shard.row-group-rows`"
+    )]
     ImageBytes {
         /// Row group index (global).
         group: usize,
@@ -141,7 +139,9 @@ pub enum ShardError {
 }
 
 /// Runs the shard stage.
-pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::StageManifest, ShardError> {
+pub fn run_stage(
+    ctx: &crate::runner::StageContext<'_>,
+) -> Result<crate::store::StageManifest, ShardError> {
     let job = ShardJob {
         run_dir: &ctx.run_dir,
         shard_dir: &ctx.stage_dir,
@@ -152,7 +152,8 @@ pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::
     let started = std::time::Instant::now();
     let summary = write_shards(&job)?;
     let mut m = manifest_of(&summary);
-    m.timings.insert("write_s".into(), started.elapsed().as_secs_f64());
+    m.timings
+        .insert("write_s".into(), started.elapsed().as_secs_f64());
     Ok(m)
 }
 
@@ -160,10 +161,13 @@ pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<crate::store::
 pub fn manifest_of(summary: &ShardSummary) -> crate::store::StageManifest {
     let mut m = crate::store::StageManifest::default();
     m.counts.insert("rows".into(), summary.rows);
-    m.counts.insert("shards".into(), summary.shards.len() as u64);
+    m.counts
+        .insert("shards".into(), summary.shards.len() as u64);
     m.counts.insert("clips".into(), summary.clips);
-    m.counts.insert("shards_unchanged".into(), summary.unchanged);
-    m.counts.insert("bytes".into(), summary.shards.iter().map(|s| s.bytes).sum());
+    m.counts
+        .insert("shards_unchanged".into(), summary.unchanged);
+    m.counts
+        .insert("bytes".into(), summary.shards.iter().map(|s| s.bytes).sum());
     m.summary = serde_json::to_value(summary).unwrap_or_default();
     m
 }

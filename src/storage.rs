@@ -39,7 +39,9 @@ pub const COMMIT_MARKER: &str = "actuary-commit.json";
 #[derive(Debug, thiserror::Error)]
 pub enum StorageError {
     /// The URL is not one this build can reach.
-    #[error("{url}: not a supported object store URL (use s3://BUCKET/PREFIX, gs://, az:// or file:///PATH)")]
+    #[error(
+        "{url}: not a supported object store URL (use s3://BUCKET/PREFIX, gs://, az:// or file:///PATH)"
+    )]
     BadUrl {
         /// The URL.
         url: String,
@@ -63,7 +65,9 @@ pub enum StorageError {
         source: std::io::Error,
     },
     /// An object does not fit in the scratch limit at all.
-    #[error("{url}: {bytes} bytes do not fit in the scratch limit of {limit} bytes (raise `cluster.scratch-limit-gb`)")]
+    #[error(
+        "{url}: {bytes} bytes do not fit in the scratch limit of {limit} bytes (raise `cluster.scratch-limit-gb`)"
+    )]
     TooLarge {
         /// The object.
         url: String,
@@ -81,7 +85,9 @@ pub enum StorageError {
         url: String,
     },
     /// A different dataset is already published at this location.
-    #[error("{url}: a different dataset is already published here (its `{COMMIT_MARKER}` lists other files); choose a new location")]
+    #[error(
+        "{url}: a different dataset is already published here (its `{COMMIT_MARKER}` lists other files); choose a new location"
+    )]
     AlreadyPublished {
         /// The dataset location.
         url: String,
@@ -173,7 +179,8 @@ pub fn open(url: &str, opts: &StoreOptions) -> Result<Location, StorageError> {
                 path: PathBuf::from(rest),
                 source,
             })?;
-            let fs = object_store::local::LocalFileSystem::new_with_prefix(rest).map_err(store_err(&url))?;
+            let fs = object_store::local::LocalFileSystem::new_with_prefix(rest)
+                .map_err(store_err(&url))?;
             (Arc::new(fs), "")
         }
         "s3" => {
@@ -183,7 +190,9 @@ pub fn open(url: &str, opts: &StoreOptions) -> Result<Location, StorageError> {
             }
             let mut b = object_store::aws::AmazonS3Builder::from_env().with_bucket_name(bucket);
             if let Some(e) = &opts.endpoint {
-                b = b.with_endpoint(e).with_virtual_hosted_style_request(opts.virtual_hosted);
+                b = b
+                    .with_endpoint(e)
+                    .with_virtual_hosted_style_request(opts.virtual_hosted);
             }
             if let Some(r) = &opts.region {
                 b = b.with_region(r);
@@ -227,7 +236,11 @@ impl Location {
                 let full = meta.location.as_ref();
                 let rel = match self.prefix.as_ref() {
                     "" => full.to_string(),
-                    p => full.strip_prefix(p).unwrap_or(full).trim_start_matches('/').to_string(),
+                    p => full
+                        .strip_prefix(p)
+                        .unwrap_or(full)
+                        .trim_start_matches('/')
+                        .to_string(),
                 };
                 out.push((rel, meta.size, meta.e_tag));
             }
@@ -259,7 +272,11 @@ impl Location {
         };
         let mut file = crate::store::AtomicFile::create(dest).map_err(io(dest))?;
         let bytes = runtime().block_on(async {
-            let r = self.store.get(&self.child(name)).await.map_err(store_err(&url))?;
+            let r = self
+                .store
+                .get(&self.child(name))
+                .await
+                .map_err(store_err(&url))?;
             let mut stream = r.into_stream();
             let mut n = 0u64;
             while let Some(chunk) = stream.next().await {
@@ -283,7 +300,11 @@ impl Location {
         };
         let mut file = std::fs::File::open(src).map_err(io)?;
         runtime().block_on(async {
-            let upload = self.store.put_multipart(&self.child(name)).await.map_err(store_err(&url))?;
+            let upload = self
+                .store
+                .put_multipart(&self.child(name))
+                .await
+                .map_err(store_err(&url))?;
             let mut writer = WriteMultipart::new_with_chunk_size(upload, self.part_size);
             let mut buf = vec![0u8; 1 << 20];
             let mut n = 0u64;
@@ -310,7 +331,11 @@ impl Location {
                 mode: PutMode::Create,
                 ..PutOptions::default()
             };
-            match self.store.put_opts(&self.child(name), PutPayload::from(bytes), opts).await {
+            match self
+                .store
+                .put_opts(&self.child(name), PutPayload::from(bytes), opts)
+                .await
+            {
                 Ok(_) => Ok(true),
                 Err(object_store::Error::AlreadyExists { .. }) => Ok(false),
                 Err(e) => Err(store_err(&url)(e)),
@@ -322,7 +347,9 @@ impl Location {
 /// A location for `url` with the process's store options, opened once and shared.
 fn shared_location(url: &str) -> Result<Location, StorageError> {
     static CACHE: OnceLock<Mutex<HashMap<String, Location>>> = OnceLock::new();
-    let (scheme, rest) = url.split_once("://").ok_or_else(|| StorageError::BadUrl { url: url.into() })?;
+    let (scheme, rest) = url
+        .split_once("://")
+        .ok_or_else(|| StorageError::BadUrl { url: url.into() })?;
     let root = match scheme {
         "file" => "file:///".to_string(),
         _ => format!("{scheme}://{}", rest.split('/').next().unwrap_or("")),
@@ -339,7 +366,11 @@ fn shared_location(url: &str) -> Result<Location, StorageError> {
 /// Splits an object URL into its store root and the object's name.
 fn object_name(url: &str) -> Result<(Location, String), StorageError> {
     let loc = shared_location(url)?;
-    let name = url.strip_prefix(&loc.url).unwrap_or(url).trim_start_matches('/').to_string();
+    let name = url
+        .strip_prefix(&loc.url)
+        .unwrap_or(url)
+        .trim_start_matches('/')
+        .to_string();
     Ok((loc, name))
 }
 
@@ -372,14 +403,19 @@ pub fn list_set(set: &SetSpec) -> Result<Vec<ClipInput>, StorageError> {
         ..root
     };
     let objects = loc.list()?;
-    let names: BTreeMap<&str, (u64, Option<&String>)> =
-        objects.iter().map(|(n, s, e)| (n.as_str(), (*s, e.as_ref()))).collect();
+    let names: BTreeMap<&str, (u64, Option<&String>)> = objects
+        .iter()
+        .map(|(n, s, e)| (n.as_str(), (*s, e.as_ref())))
+        .collect();
     let mut clips = Vec::new();
     for (name, size, etag) in &objects {
         if !is_clip(Path::new(name)) {
             continue;
         }
-        let stem = Path::new(name).with_extension("").to_string_lossy().into_owned();
+        let stem = Path::new(name)
+            .with_extension("")
+            .to_string_lossy()
+            .into_owned();
         let sidecar = if set.labelled {
             ["actions.csv", "actions.parquet"]
                 .iter()
@@ -422,7 +458,12 @@ struct Scratch {
 
 fn scratch() -> &'static Mutex<Arc<Scratch>> {
     static S: OnceLock<Mutex<Arc<Scratch>>> = OnceLock::new();
-    S.get_or_init(|| Mutex::new(Arc::new(new_scratch(None, crate::spec::ClusterOptions::default().scratch_limit_bytes))))
+    S.get_or_init(|| {
+        Mutex::new(Arc::new(new_scratch(
+            None,
+            crate::spec::ClusterOptions::default().scratch_limit_bytes,
+        )))
+    })
 }
 
 fn new_scratch(dir: Option<&Path>, limit: u64) -> Scratch {
@@ -484,10 +525,12 @@ pub fn local_copy(path: &Path) -> Result<LocalCopy, StorageError> {
     let (loc, name) = object_name(&url)?;
     let size = match sizes().lock().unwrap().get(&url) {
         Some(s) => *s,
-        None => runtime()
-            .block_on(loc.store.head(&loc.child(&name)))
-            .map_err(store_err(&url))?
-            .size,
+        None => {
+            runtime()
+                .block_on(loc.store.head(&loc.child(&name)))
+                .map_err(store_err(&url))?
+                .size
+        }
     };
     let s = scratch().lock().unwrap().clone();
     if size > s.limit {
@@ -507,7 +550,9 @@ pub fn local_copy(path: &Path) -> Result<LocalCopy, StorageError> {
     let file_name = format!(
         "{}-{}",
         &crate::util::sha256_hex(url.as_bytes())[..16],
-        Path::new(&name).file_name().map_or("clip".into(), |n| n.to_string_lossy())
+        Path::new(&name)
+            .file_name()
+            .map_or("clip".into(), |n| n.to_string_lossy())
     );
     let copy = LocalCopy {
         path: s.dir.join(file_name),
@@ -586,23 +631,30 @@ pub fn publish(dir: &Path, url: &str, opts: &StoreOptions) -> Result<PublishRepo
         files,
     };
     let same = |bytes: &[u8]| -> Result<bool, StorageError> {
-        let old: CommitMarker = serde_json::from_slice(bytes).map_err(|e| StorageError::BadMarker {
-            url: loc.url_of(COMMIT_MARKER),
-            reason: e.to_string(),
-        })?;
+        let old: CommitMarker =
+            serde_json::from_slice(bytes).map_err(|e| StorageError::BadMarker {
+                url: loc.url_of(COMMIT_MARKER),
+                reason: e.to_string(),
+            })?;
         Ok(old.files == marker.files)
     };
     let done = |already| PublishReport {
         url: loc.url.clone(),
         uploaded: if already { 0 } else { marker.files.len() },
-        bytes: if already { 0 } else { marker.files.iter().map(|f| f.bytes).sum() },
+        bytes: if already {
+            0
+        } else {
+            marker.files.iter().map(|f| f.bytes).sum()
+        },
         already,
     };
     if let Some(existing) = loc.read(COMMIT_MARKER)? {
         return if same(&existing)? {
             Ok(done(true))
         } else {
-            Err(StorageError::AlreadyPublished { url: loc.url.clone() })
+            Err(StorageError::AlreadyPublished {
+                url: loc.url.clone(),
+            })
         };
     }
     for f in &marker.files {
@@ -618,15 +670,24 @@ pub fn publish(dir: &Path, url: &str, opts: &StoreOptions) -> Result<PublishRepo
         if same(&existing)? {
             Ok(done(true))
         } else {
-            Err(StorageError::AlreadyPublished { url: loc.url.clone() })
+            Err(StorageError::AlreadyPublished {
+                url: loc.url.clone(),
+            })
         }
     }
 }
 
 /// Opens a published dataset: its commit marker, or [`StorageError::NotCommitted`].
-pub fn open_published(url: &str, opts: &StoreOptions) -> Result<(Location, CommitMarker), StorageError> {
+pub fn open_published(
+    url: &str,
+    opts: &StoreOptions,
+) -> Result<(Location, CommitMarker), StorageError> {
     let loc = open(url, opts)?;
-    let bytes = loc.read(COMMIT_MARKER)?.ok_or_else(|| StorageError::NotCommitted { url: loc.url.clone() })?;
+    let bytes = loc
+        .read(COMMIT_MARKER)?
+        .ok_or_else(|| StorageError::NotCommitted {
+            url: loc.url.clone(),
+        })?;
     let marker = serde_json::from_slice(&bytes).map_err(|e| StorageError::BadMarker {
         url: loc.url_of(COMMIT_MARKER),
         reason: e.to_string(),

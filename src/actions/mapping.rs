@@ -99,7 +99,11 @@ pub fn map_series(
     let mut sum = vec![0.0f64; src.dims];
     let mut out = Vec::with_capacity(targets.len());
     for iv in targets {
-        let held = if want_hold { hold_row(src, iv.start) } else { 0 };
+        let held = if want_hold {
+            hold_row(src, iv.start)
+        } else {
+            0
+        };
         if want_mean {
             mean_into(src, *iv, &mut mean);
         }
@@ -146,7 +150,11 @@ fn validate(src: &Series<'_>, rules: &[MapRule], targets: &[Interval]) -> Result
             .iter()
             .all(|v| v.is_finite());
         if !(s.is_finite() && e.is_finite() && values_ok && s < e && e <= next && s < next) {
-            return Err(ActionsError::BadSeriesRow { row: i, start: s, end: e });
+            return Err(ActionsError::BadSeriesRow {
+                row: i,
+                start: s,
+                end: e,
+            });
         }
     }
     for (index, iv) in targets.iter().enumerate() {
@@ -172,10 +180,17 @@ fn mean_into(src: &Series<'_>, iv: Interval, acc: &mut [f64]) {
     acc.fill(0.0);
     let rows = src.start.len();
     // The row in force at iv.start (the first row also covers all time before it).
-    let mut j = src.start.partition_point(|&s| s <= iv.start).saturating_sub(1);
+    let mut j = src
+        .start
+        .partition_point(|&s| s <= iv.start)
+        .saturating_sub(1);
     let mut lo = iv.start;
     loop {
-        let seg_end = if j + 1 < rows { src.start[j + 1] } else { f64::INFINITY };
+        let seg_end = if j + 1 < rows {
+            src.start[j + 1]
+        } else {
+            f64::INFINITY
+        };
         let hi = iv.end.min(seg_end);
         if hi > lo {
             let w = hi - lo;
@@ -211,7 +226,11 @@ fn sum_into(src: &Series<'_>, iv: Interval, acc: &mut [f64]) {
             continue;
         }
         // A row wholly inside the interval gets weight exactly 1.
-        let w = if s >= iv.start && e <= iv.end { 1.0 } else { overlap / (e - s) };
+        let w = if s >= iv.start && e <= iv.end {
+            1.0
+        } else {
+            overlap / (e - s)
+        };
         let vals = &src.values[j * src.dims..(j + 1) * src.dims];
         for (a, v) in acc.iter_mut().zip(vals) {
             *a += v * w;
@@ -224,7 +243,12 @@ mod tests {
     use super::*;
 
     fn series<'a>(start: &'a [f64], end: &'a [f64], values: &'a [f64]) -> Series<'a> {
-        Series { start, end, values, dims: 1 }
+        Series {
+            start,
+            end,
+            values,
+            dims: 1,
+        }
     }
 
     #[test]
@@ -248,7 +272,16 @@ mod tests {
         let out = map_series(
             &series(&[0.0], &[1.0], &[10.0]),
             &[MapRule::Sum],
-            &[Interval { start: 0.25, end: 0.5 }, Interval { start: 0.9, end: 1.4 }],
+            &[
+                Interval {
+                    start: 0.25,
+                    end: 0.5,
+                },
+                Interval {
+                    start: 0.9,
+                    end: 1.4,
+                },
+            ],
         )
         .unwrap();
         assert!((out[0][0] - 2.5).abs() < 1e-6);
@@ -263,7 +296,10 @@ mod tests {
         let out = map_series(
             &series(&start, &end, &[2.0, 4.0]),
             &[MapRule::Mean],
-            &[Interval { start: 0.0, end: 4.0 }],
+            &[Interval {
+                start: 0.0,
+                end: 4.0,
+            }],
         )
         .unwrap();
         // (2 s * 2 + 2 s * 4) / 4 s = 3
@@ -293,9 +329,15 @@ mod tests {
             &[],
         )
         .unwrap_err();
-        assert!(matches!(err, ActionsError::BadSeriesRow { row: 0, .. }), "{err}");
+        assert!(
+            matches!(err, ActionsError::BadSeriesRow { row: 0, .. }),
+            "{err}"
+        );
         let err = map_series(&series(&[0.0], &[1.0], &[1.0]), &[], &[]).unwrap_err();
-        assert!(matches!(err, ActionsError::RuleCount { rules: 0, dims: 1 }), "{err}");
+        assert!(
+            matches!(err, ActionsError::RuleCount { rules: 0, dims: 1 }),
+            "{err}"
+        );
     }
 
     #[test]

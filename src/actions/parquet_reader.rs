@@ -96,7 +96,11 @@ fn columns_f64(
             }
             macro_rules! conv {
                 ($t:ty) => {
-                    col.as_primitive::<$t>().values().iter().map(|&v| v as f64).collect()
+                    col.as_primitive::<$t>()
+                        .values()
+                        .iter()
+                        .map(|&v| v as f64)
+                        .collect()
                 };
             }
             Ok(match col.data_type() {

@@ -45,9 +45,17 @@ fn rules_follow_header_order_and_default() {
         rules_for(&dims, &map, MapRule::Sum).unwrap(),
         vec![MapRule::Sum, MapRule::Sum, MapRule::Hold]
     );
-    let bad = BTreeMap::from([("dz".to_string(), MapRule::Hold), ("dw".to_string(), MapRule::Sum)]);
-    let msg = rules_for(&dims, &bad, MapRule::Sum).unwrap_err().to_string();
-    assert!(msg.contains("dw, dz") && msg.contains("dx, dy, grip"), "{msg}");
+    let bad = BTreeMap::from([
+        ("dz".to_string(), MapRule::Hold),
+        ("dw".to_string(), MapRule::Sum),
+    ]);
+    let msg = rules_for(&dims, &bad, MapRule::Sum)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        msg.contains("dw, dz") && msg.contains("dx, dy, grip"),
+        "{msg}"
+    );
 }
 
 #[test]
@@ -76,7 +84,10 @@ fn csv_with_bom_crlf_quotes_and_trailing_blank_lines_parses() {
     assert_eq!(s.row(1), &[-2e-3, 1.0]);
     assert!(s.expect_dims(&s.dims.clone()).is_ok());
     let msg = s.expect_dims(&["dy".into()]).unwrap_err().to_string();
-    assert!(msg.contains("a.actions.csv") && msg.contains("dx, grip"), "{msg}");
+    assert!(
+        msg.contains("a.actions.csv") && msg.contains("dx, grip"),
+        "{msg}"
+    );
 }
 
 #[test]
@@ -90,7 +101,11 @@ fn single_row_log_holds_for_one_frame_interval() {
     let out = map_to_frames(&s, &[MapRule::Sum], 10.0, 3, 0.05).unwrap();
     // Span [0.05, 0.15): half in frame interval 0, half in 1.
     assert_eq!(out, vec![vec![1.5], vec![1.5]]);
-    assert!(map_to_frames(&s, &[MapRule::Sum], 10.0, 1, 0.0).unwrap().is_empty());
+    assert!(
+        map_to_frames(&s, &[MapRule::Sum], 10.0, 1, 0.0)
+            .unwrap()
+            .is_empty()
+    );
 }
 
 #[test]
@@ -117,7 +132,10 @@ fn parquet_errors_name_file_and_row() {
         (
             "nan.actions.parquet",
             vec![
-                ("t", Arc::new(Float64Array::from(vec![0.0, 0.1, 0.2])) as ArrayRef),
+                (
+                    "t",
+                    Arc::new(Float64Array::from(vec![0.0, 0.1, 0.2])) as ArrayRef,
+                ),
                 ("dx", Arc::new(Float64Array::from(vec![0.0, 1.0, f64::NAN]))),
             ],
             "row 3",
@@ -125,7 +143,10 @@ fn parquet_errors_name_file_and_row() {
         (
             "order.actions.parquet",
             vec![
-                ("t", Arc::new(Float64Array::from(vec![0.0, 0.1, 0.1])) as ArrayRef),
+                (
+                    "t",
+                    Arc::new(Float64Array::from(vec![0.0, 0.1, 0.1])) as ArrayRef,
+                ),
                 ("dx", Arc::new(Int32Array::from(vec![0, 1, 2]))),
             ],
             "row 3",
@@ -133,7 +154,10 @@ fn parquet_errors_name_file_and_row() {
         (
             "null.actions.parquet",
             vec![
-                ("t", Arc::new(Float64Array::from(vec![0.0, 0.1])) as ArrayRef),
+                (
+                    "t",
+                    Arc::new(Float64Array::from(vec![0.0, 0.1])) as ArrayRef,
+                ),
                 ("dx", Arc::new(Float64Array::from(vec![Some(1.0), None]))),
             ],
             "row 2",
@@ -157,7 +181,10 @@ fn parquet_errors_name_file_and_row() {
         (
             "empty.actions.parquet",
             vec![
-                ("t", Arc::new(Float64Array::from(Vec::<f64>::new())) as ArrayRef),
+                (
+                    "t",
+                    Arc::new(Float64Array::from(Vec::<f64>::new())) as ArrayRef,
+                ),
                 ("dx", Arc::new(Float64Array::from(Vec::<f64>::new()))),
             ],
             "row 1",
@@ -167,7 +194,10 @@ fn parquet_errors_name_file_and_row() {
         let p = dir.path().join(name);
         write_parquet(&p, columns);
         let msg = read_sidecar(&p).unwrap_err().to_string();
-        assert!(msg.contains(&p.display().to_string()) && msg.contains(place), "{name}: {msg}");
+        assert!(
+            msg.contains(&p.display().to_string()) && msg.contains(place),
+            "{name}: {msg}"
+        );
     }
 }
 
@@ -178,10 +208,16 @@ fn parquet_integer_columns_read_as_float() {
     write_parquet(
         &p,
         vec![
-            ("t", Arc::new(Float64Array::from(vec![0.0, 0.5])) as ArrayRef),
+            (
+                "t",
+                Arc::new(Float64Array::from(vec![0.0, 0.5])) as ArrayRef,
+            ),
             ("grip", Arc::new(Int32Array::from(vec![0, 1]))),
         ],
     );
     let s = read_sidecar(&p).unwrap();
-    assert_eq!((s.dims, s.t, s.values), (vec!["grip".to_string()], vec![0.0, 0.5], vec![0.0, 1.0]));
+    assert_eq!(
+        (s.dims, s.t, s.values),
+        (vec!["grip".to_string()], vec![0.0, 0.5], vec![0.0, 1.0])
+    );
 }

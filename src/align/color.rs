@@ -44,33 +44,57 @@ fn encode_lut() -> &'static [u8] {
     static LUT: OnceLock<Vec<u8>> = OnceLock::new();
     LUT.get_or_init(|| {
         (0..=u16::MAX)
-            .map(|i| (linear_to_srgb(f64::from(i) / 65535.0) * 255.0).round().clamp(0.0, 255.0) as u8)
+            .map(|i| {
+                (linear_to_srgb(f64::from(i) / 65535.0) * 255.0)
+                    .round()
+                    .clamp(0.0, 255.0) as u8
+            })
             .collect()
     })
 }
 
 /// The sRGB decoding function (IEC 61966-2-1): non-linear `c` in [0, 1] to linear light.
 pub fn srgb_to_linear(c: f64) -> f64 {
-    if c <= 0.04045 { c / 12.92 } else { ((c + 0.055) / 1.055).powf(2.4) }
+    if c <= 0.04045 {
+        c / 12.92
+    } else {
+        ((c + 0.055) / 1.055).powf(2.4)
+    }
 }
 
 /// The sRGB encoding function (IEC 61966-2-1): linear light to non-linear.
 pub fn linear_to_srgb(c: f64) -> f64 {
-    if c <= 0.003_130_8 { 12.92 * c } else { 1.055 * c.powf(1.0 / 2.4) - 0.055 }
+    if c <= 0.003_130_8 {
+        12.92 * c
+    } else {
+        1.055 * c.powf(1.0 / 2.4) - 0.055
+    }
 }
 
 fn lab_f(t: f64) -> f64 {
-    if t > DELTA * DELTA * DELTA { t.cbrt() } else { t / (3.0 * DELTA * DELTA) + 4.0 / 29.0 }
+    if t > DELTA * DELTA * DELTA {
+        t.cbrt()
+    } else {
+        t / (3.0 * DELTA * DELTA) + 4.0 / 29.0
+    }
 }
 
 fn lab_f_inv(t: f64) -> f64 {
-    if t > DELTA { t * t * t } else { 3.0 * DELTA * DELTA * (t - 4.0 / 29.0) }
+    if t > DELTA {
+        t * t * t
+    } else {
+        3.0 * DELTA * DELTA * (t - 4.0 / 29.0)
+    }
 }
 
 /// 8-bit sRGB to CIELAB (D65).
 pub fn rgb_to_lab(rgb: [u8; 3]) -> [f64; 3] {
     let lut = decode_lut();
-    let lin = [lut[rgb[0] as usize], lut[rgb[1] as usize], lut[rgb[2] as usize]];
+    let lin = [
+        lut[rgb[0] as usize],
+        lut[rgb[1] as usize],
+        lut[rgb[2] as usize],
+    ];
     linear_to_lab(lin)
 }
 
@@ -88,7 +112,11 @@ pub fn lab_to_linear(lab: [f64; 3]) -> [f64; 3] {
     let fy = (lab[0] + 16.0) / 116.0;
     let fx = fy + lab[1] / 500.0;
     let fz = fy - lab[2] / 200.0;
-    let xyz = [D65[0] * lab_f_inv(fx), D65[1] * lab_f_inv(fy), D65[2] * lab_f_inv(fz)];
+    let xyz = [
+        D65[0] * lab_f_inv(fx),
+        D65[1] * lab_f_inv(fy),
+        D65[2] * lab_f_inv(fz),
+    ];
     mat(&XYZ_TO_RGB, xyz)
 }
 
@@ -183,7 +211,8 @@ impl LabTransform {
     pub fn gain(&self) -> [f64; 3] {
         let mut g = [1.0; 3];
         for (c, g) in g.iter_mut().enumerate() {
-            *g = (self.dst.std[c].max(MIN_STD) / self.src.std[c].max(MIN_STD)).clamp(1.0 / MAX_GAIN, MAX_GAIN);
+            *g = (self.dst.std[c].max(MIN_STD) / self.src.std[c].max(MIN_STD))
+                .clamp(1.0 / MAX_GAIN, MAX_GAIN);
         }
         g
     }
@@ -237,7 +266,9 @@ impl Default for HistogramAccumulator {
 impl HistogramAccumulator {
     /// Adds every pixel of an RGB8 frame.
     pub fn add_frame(&mut self, rgb: &[u8]) {
-        let bin = |v: f64, lo: f64, hi: f64| (((v - lo) / (hi - lo) * HIST_BINS as f64).floor().max(0.0) as usize).min(HIST_BINS - 1);
+        let bin = |v: f64, lo: f64, hi: f64| {
+            (((v - lo) / (hi - lo) * HIST_BINS as f64).floor().max(0.0) as usize).min(HIST_BINS - 1)
+        };
         for px in rgb.chunks_exact(3) {
             let lab = rgb_to_lab([px[0], px[1], px[2]]);
             self.counts[0][bin(lab[0], 0.0, 100.0)] += 1;
@@ -250,7 +281,15 @@ impl HistogramAccumulator {
     pub fn finish(&self) -> LabHistogram {
         let norm = |c: &[u64; HIST_BINS]| {
             let total: u64 = c.iter().sum();
-            c.iter().map(|&v| if total == 0 { 0.0 } else { v as f64 / total as f64 }).collect()
+            c.iter()
+                .map(|&v| {
+                    if total == 0 {
+                        0.0
+                    } else {
+                        v as f64 / total as f64
+                    }
+                })
+                .collect()
         };
         LabHistogram {
             l: norm(&self.counts[0]),
@@ -268,7 +307,10 @@ mod tests {
     fn white_is_l100_and_black_is_l0() {
         // CIE 15:2004: the reference white has L* = 100, a* = b* = 0.
         let w = rgb_to_lab([255, 255, 255]);
-        assert!((w[0] - 100.0).abs() < 0.01 && w[1].abs() < 0.01 && w[2].abs() < 0.01, "{w:?}");
+        assert!(
+            (w[0] - 100.0).abs() < 0.01 && w[1].abs() < 0.01 && w[2].abs() < 0.01,
+            "{w:?}"
+        );
         let k = rgb_to_lab([0, 0, 0]);
         assert!(k[0].abs() < 1e-9, "{k:?}");
     }
@@ -287,7 +329,10 @@ mod tests {
 
     #[test]
     fn identity_transform_keeps_frames() {
-        let s = LabStats { mean: [50.0, 1.0, -2.0], std: [10.0, 5.0, 5.0] };
+        let s = LabStats {
+            mean: [50.0, 1.0, -2.0],
+            std: [10.0, 5.0, 5.0],
+        };
         let t = LabTransform { src: s, dst: s };
         let mut f = vec![10u8, 200, 30, 128, 128, 128];
         let orig = f.clone();

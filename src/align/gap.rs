@@ -117,7 +117,12 @@ pub fn fit_gaussian(rows: &[[f64; FEATURES]]) -> Option<Gaussian> {
 
 /// The squared Fréchet distance between two Gaussians (see the module docs).
 pub fn frechet(a: &Gaussian, b: &Gaussian) -> f64 {
-    let d2: f64 = a.mean.iter().zip(&b.mean).map(|(x, y)| (x - y) * (x - y)).sum();
+    let d2: f64 = a
+        .mean
+        .iter()
+        .zip(&b.mean)
+        .map(|(x, y)| (x - y) * (x - y))
+        .sum();
     let sa = sqrt_psd(&a.cov);
     let inner = sa.mul(&b.cov).mul(&sa);
     let cross = sqrt_psd(&inner).trace();
@@ -139,7 +144,10 @@ mod tests {
     #[test]
     fn frechet_of_1d_gaussians_matches_closed_form() {
         // For 1-D Gaussians, d² = (μ₁−μ₂)² + (σ₁−σ₂)² (Dowson & Landau 1982).
-        let mut a = Gaussian { mean: vec![0.0; FEATURES], cov: Mat::zeros(FEATURES) };
+        let mut a = Gaussian {
+            mean: vec![0.0; FEATURES],
+            cov: Mat::zeros(FEATURES),
+        };
         let mut b = a.clone();
         a.mean[0] = 1.0;
         *a.cov.at_mut(0, 0) = 4.0;

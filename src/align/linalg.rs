@@ -13,7 +13,10 @@ pub struct Mat {
 impl Mat {
     /// The `n x n` zero matrix.
     pub fn zeros(n: usize) -> Self {
-        Self { n, a: vec![0.0; n * n] }
+        Self {
+            n,
+            a: vec![0.0; n * n],
+        }
     }
 
     /// Entry `(i, j)`.
@@ -142,7 +145,10 @@ mod tests {
 
     #[test]
     fn sqrt_squares_back() {
-        let m = Mat { n: 3, a: vec![4.0, 1.0, 0.5, 1.0, 3.0, 0.2, 0.5, 0.2, 2.0] };
+        let m = Mat {
+            n: 3,
+            a: vec![4.0, 1.0, 0.5, 1.0, 3.0, 0.2, 0.5, 0.2, 2.0],
+        };
         let r = sqrt_psd(&m);
         let back = r.mul(&r);
         for (x, y) in back.a.iter().zip(&m.a) {

@@ -35,7 +35,11 @@ pub fn difference_energy(a: &[f32], b: &[f32]) -> f64 {
     if a.is_empty() {
         return 0.0;
     }
-    a.iter().zip(b).map(|(x, y)| f64::from((x - y).abs())).sum::<f64>() / a.len() as f64
+    a.iter()
+        .zip(b)
+        .map(|(x, y)| f64::from((x - y).abs()))
+        .sum::<f64>()
+        / a.len() as f64
 }
 
 /// Block size and search range for frames of `width x height`.
@@ -45,7 +49,16 @@ pub fn block_params(width: usize, height: usize) -> (usize, usize) {
 }
 
 #[expect(clippy::too_many_arguments, reason = "two block origins in two frames")]
-fn ssd(a: &[f32], b: &[f32], w: usize, ax: usize, ay: usize, bx: usize, by: usize, size: usize) -> f32 {
+fn ssd(
+    a: &[f32],
+    b: &[f32],
+    w: usize,
+    ax: usize,
+    ay: usize,
+    bx: usize,
+    by: usize,
+    size: usize,
+) -> f32 {
     let mut s = 0.0;
     for r in 0..size {
         let ra = &a[(ay + r) * w + ax..(ay + r) * w + ax + size];
@@ -79,7 +92,10 @@ pub fn pair_motion(a: &[f32], b: &[f32], width: usize, height: usize) -> Option<
     median(&mut lengths)
 }
 
-#[expect(clippy::too_many_arguments, reason = "a block and its search, kept flat for speed")]
+#[expect(
+    clippy::too_many_arguments,
+    reason = "a block and its search, kept flat for speed"
+)]
 fn block_displacement(
     a: &[f32],
     b: &[f32],
@@ -202,7 +218,11 @@ pub fn median(v: &mut [f64]) -> Option<f64> {
     }
     v.sort_by(f64::total_cmp);
     let n = v.len();
-    Some(if n % 2 == 1 { v[n / 2] } else { 0.5 * (v[n / 2 - 1] + v[n / 2]) })
+    Some(if n % 2 == 1 {
+        v[n / 2]
+    } else {
+        0.5 * (v[n / 2 - 1] + v[n / 2])
+    })
 }
 
 /// Motion of one clip.
@@ -253,7 +273,8 @@ mod tests {
     use super::*;
 
     fn texture(x: f64, y: f64) -> f32 {
-        (128.0 + 50.0 * (0.37 * x).sin() * (0.29 * y).cos() + 30.0 * (0.61 * x + 0.23 * y).sin()) as f32
+        (128.0 + 50.0 * (0.37 * x).sin() * (0.29 * y).cos() + 30.0 * (0.61 * x + 0.23 * y).sin())
+            as f32
     }
 
     fn shifted(w: usize, h: usize, dx: f64) -> Vec<f32> {

@@ -37,14 +37,19 @@ pub fn action_magnitude(actions: &[Vec<f32>], rules: &[MapRule]) -> Vec<f64> {
                 let v = f64::from(actions[k][d]);
                 match rule {
                     MapRule::Hold => {
-                        if k == 0 { 0.0 } else { (v - f64::from(actions[k - 1][d])).abs() }
+                        if k == 0 {
+                            0.0
+                        } else {
+                            (v - f64::from(actions[k - 1][d])).abs()
+                        }
                     }
                     MapRule::Mean | MapRule::Sum => v.abs(),
                 }
             })
             .collect();
         let mean = col.iter().sum::<f64>() / n.max(1) as f64;
-        let sd = (col.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / n.max(1) as f64).sqrt();
+        let sd =
+            (col.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / n.max(1) as f64).sqrt();
         if sd > 1e-12 {
             for (t, x) in total.iter_mut().zip(&col) {
                 *t += x / sd;
@@ -69,7 +74,11 @@ pub fn pearson(a: &[f64], b: &[f64]) -> f64 {
         saa += x * x;
         sbb += y * y;
     }
-    if saa <= 1e-18 || sbb <= 1e-18 { 0.0 } else { sab / (saa * sbb).sqrt() }
+    if saa <= 1e-18 || sbb <= 1e-18 {
+        0.0
+    } else {
+        sab / (saa * sbb).sqrt()
+    }
 }
 
 /// Estimates the offset of `sidecar` against a clip of `frames` frames at `fps` whose
@@ -94,7 +103,11 @@ pub fn estimate_offset(
     let (bi, &(bo, br)) = scores
         .iter()
         .enumerate()
-        .max_by(|a, b| a.1.1.total_cmp(&b.1.1).then(b.1.0.abs().total_cmp(&a.1.0.abs())))
+        .max_by(|a, b| {
+            a.1.1
+                .total_cmp(&b.1.1)
+                .then(b.1.0.abs().total_cmp(&a.1.0.abs()))
+        })
         .expect("at least one candidate");
     let mut estimated = bo;
     if bi > 0 && bi + 1 < scores.len() {

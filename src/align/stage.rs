@@ -14,7 +14,9 @@ use super::view::{AlignedRun, Alignment, alignment_path, identity_alignment, lis
 use super::{AlignError, AlignOptions, Photometric, Speed};
 use crate::actions::{map_to_frames, read_sidecar};
 use crate::spec::{ActionsOptions, Offset};
-use crate::store::{ClipRecord, ClipStatus, FrameReader, FrameWriter, StageManifest, write_json_atomic};
+use crate::store::{
+    ClipRecord, ClipStatus, FrameReader, FrameWriter, StageManifest, write_json_atomic,
+};
 
 /// File name of the alignment inside `RUN/align/`.
 pub const ALIGNMENT_FILE: &str = "alignment.json";
@@ -99,13 +101,30 @@ pub struct AlignSummary {
 
 /// Runs the align stage of a run (see [`align_run`]) and builds its manifest.
 pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<StageManifest, AlignError> {
-    let (alignment, summary) = align_run(&ctx.run_dir, &ctx.spec.align, &ctx.spec.actions, ctx.threads)?;
+    let (alignment, summary) = align_run(
+        &ctx.run_dir,
+        &ctx.spec.align,
+        &ctx.spec.actions,
+        ctx.threads,
+    )?;
     let mut m = StageManifest::default();
-    m.counts.insert("clips".into(), alignment.clips.len() as u64);
-    m.counts.insert("frames".into(), alignment.clips.iter().map(|c| u64::from(c.frames)).sum());
-    m.counts.insert("model_frames".into(), summary.sets.iter().map(|s| s.model_frames).sum());
-    let flagged = summary.offsets.iter().filter(|o| !o.estimate.trusted).count();
-    m.counts.insert("offsets_estimated".into(), summary.offsets.len() as u64);
+    m.counts
+        .insert("clips".into(), alignment.clips.len() as u64);
+    m.counts.insert(
+        "frames".into(),
+        alignment.clips.iter().map(|c| u64::from(c.frames)).sum(),
+    );
+    m.counts.insert(
+        "model_frames".into(),
+        summary.sets.iter().map(|s| s.model_frames).sum(),
+    );
+    let flagged = summary
+        .offsets
+        .iter()
+        .filter(|o| !o.estimate.trusted)
+        .count();
+    m.counts
+        .insert("offsets_estimated".into(), summary.offsets.len() as u64);
     m.counts.insert("offsets_untrusted".into(), flagged as u64);
     m.clips = alignment
         .clips
@@ -164,7 +183,8 @@ pub fn align_run(
     let clips: Vec<Clip> = records
         .into_iter()
         .map(|rec| {
-            let frames = FrameReader::open(&ClipRecord::frames_path(&decode_dir, &rec.set, &rec.id))?;
+            let frames =
+                FrameReader::open(&ClipRecord::frames_path(&decode_dir, &rec.set, &rec.id))?;
             Ok(Clip { rec, frames })
         })
         .collect::<Result<_, AlignError>>()?;
@@ -182,7 +202,9 @@ pub fn align_run(
                 if !estimate || !c.rec.labelled || c.frames.len() < 3 {
                     return Ok(None);
                 }
-                let Some(side) = &c.rec.sidecar else { return Ok(None) };
+                let Some(side) = &c.rec.sidecar else {
+                    return Ok(None);
+                };
                 let wrap = |source| AlignError::Actions {
                     set: c.rec.set.clone(),
                     id: c.rec.id.clone(),
@@ -211,10 +233,17 @@ pub fn align_run(
     let motions: Vec<ClipMotion> = pool.install(|| {
         clips
             .par_iter()
-            .map(|c| clip_motion(c.frames.len(), w, h, MOTION_PAIRS, |i| c.frames.frame(i).to_vec()))
+            .map(|c| {
+                clip_motion(c.frames.len(), w, h, MOTION_PAIRS, |i| {
+                    c.frames.frame(i).to_vec()
+                })
+            })
             .collect()
     });
-    let mut set_names: Vec<(String, bool)> = clips.iter().map(|c| (c.rec.set.clone(), c.rec.labelled)).collect();
+    let mut set_names: Vec<(String, bool)> = clips
+        .iter()
+        .map(|c| (c.rec.set.clone(), c.rec.labelled))
+        .collect();
     set_names.dedup();
     let pooled = |filter: &dyn Fn(&Clip) -> bool| {
         let mut v: Vec<f64> = clips
@@ -227,7 +256,10 @@ pub fn align_run(
     };
     let lab_rate = pooled(&|c| c.rec.labelled);
     let unl_rate = pooled(&|c| !c.rec.labelled);
-    let set_rate: Vec<Option<f64>> = set_names.iter().map(|(s, _)| pooled(&|c| &c.rec.set == s)).collect();
+    let set_rate: Vec<Option<f64>> = set_names
+        .iter()
+        .map(|(s, _)| pooled(&|c| &c.rec.set == s))
+        .collect();
     let mut set_factor = vec![1.0; set_names.len()];
     let mut resampled = None;
     if let (Speed::Auto, Some(l), Some(u)) = (opts.speed, lab_rate, unl_rate)
@@ -279,8 +311,10 @@ pub fn align_run(
     let take = opts.gap_sample as usize;
     let labelled_picks = spread(&lengths_where(&|c| c.rec.labelled), take);
     let target = lab_stats(&labelled_picks);
-    let set_picks: Vec<Vec<(usize, usize)>> =
-        set_names.iter().map(|(s, _)| spread(&lengths_where(&|c| &c.rec.set == s), take)).collect();
+    let set_picks: Vec<Vec<(usize, usize)>> = set_names
+        .iter()
+        .map(|(s, _)| spread(&lengths_where(&|c| &c.rec.set == s), take))
+        .collect();
     let set_before: Vec<Option<LabStats>> = set_picks.iter().map(|p| lab_stats(p)).collect();
     let mut set_transform: Vec<Option<LabTransform>> = vec![None; set_names.len()];
     if let Some(dst) = target
@@ -295,7 +329,10 @@ pub fn align_run(
 
     // 4. The alignment.
     for (i, ca) in alignment.clips.iter_mut().enumerate() {
-        let si = set_names.iter().position(|(s, _)| *s == ca.set).expect("set listed");
+        let si = set_names
+            .iter()
+            .position(|(s, _)| *s == ca.set)
+            .expect("set listed");
         ca.speed_factor = set_factor[si];
         ca.motion_rate = motions[i].rate;
         if let Some((est, acts)) = &offsets[i] {
@@ -334,7 +371,12 @@ pub fn align_run(
 
     // 6. Figures before and after.
     let features_before = |picks: &[(usize, usize)]| -> Vec<[f64; FEATURES]> {
-        pool.install(|| picks.par_iter().map(|&(c, k)| frame_features(clips[c].frames.frame(k), w, h)).collect())
+        pool.install(|| {
+            picks
+                .par_iter()
+                .map(|&(c, k)| frame_features(clips[c].frames.frame(k), w, h))
+                .collect()
+        })
     };
     let aligned_picks = |f: &dyn Fn(&Clip) -> bool| -> Vec<(usize, usize)> {
         let lengths: Vec<(usize, usize)> = clips
@@ -352,7 +394,12 @@ pub fn align_run(
         buf
     };
     let features_after = |picks: &[(usize, usize)]| -> Vec<[f64; FEATURES]> {
-        pool.install(|| picks.par_iter().map(|&(c, k)| frame_features(&aligned_frame(c, k), w, h)).collect())
+        pool.install(|| {
+            picks
+                .par_iter()
+                .map(|&(c, k)| frame_features(&aligned_frame(c, k), w, h))
+                .collect()
+        })
     };
     let lab_f_before = features_before(&labelled_picks);
     let lab_f_after = features_after(&aligned_picks(&|c| c.rec.labelled));
@@ -363,7 +410,9 @@ pub fn align_run(
 
     let mut sets = Vec::new();
     for (si, (name, labelled)) in set_names.iter().enumerate() {
-        let members: Vec<usize> = (0..clips.len()).filter(|&i| &clips[i].rec.set == name).collect();
+        let members: Vec<usize> = (0..clips.len())
+            .filter(|&i| &clips[i].rec.set == name)
+            .collect();
         let after_picks = aligned_picks(&|c| &c.rec.set == name);
         let mut hb = HistogramAccumulator::default();
         for &(c, k) in &set_picks[si] {
@@ -388,7 +437,12 @@ pub fn align_run(
                     })
                     .collect()
             });
-            median(&mut ms.iter().flat_map(|m| m.samples.iter().copied()).collect::<Vec<_>>())
+            median(
+                &mut ms
+                    .iter()
+                    .flat_map(|m| m.samples.iter().copied())
+                    .collect::<Vec<_>>(),
+            )
         };
         let (gb, ga) = if *labelled {
             (None, None)
@@ -451,7 +505,11 @@ pub fn align_run(
 pub fn motion_energy(frames: &FrameReader) -> Vec<f64> {
     let n = frames.len();
     let mut out = Vec::with_capacity(n.saturating_sub(1));
-    let mut prev = if n > 0 { luma(frames.frame(0)) } else { Vec::new() };
+    let mut prev = if n > 0 {
+        luma(frames.frame(0))
+    } else {
+        Vec::new()
+    };
     for k in 1..n {
         let cur = luma(frames.frame(k));
         out.push(difference_energy(&prev, &cur));
@@ -467,7 +525,11 @@ pub fn inspect_text(summary: &serde_json::Value) -> String {
         return String::new();
     };
     let mut out = String::new();
-    let _ = writeln!(out, "  domain gap (squared Frechet, colour/texture features): {:.2} -> {:.2}", s.gap_before, s.gap_after);
+    let _ = writeln!(
+        out,
+        "  domain gap (squared Frechet, colour/texture features): {:.2} -> {:.2}",
+        s.gap_before, s.gap_after
+    );
     let opt = |v: Option<f64>| v.map_or("-".to_string(), |x| format!("{x:.2}"));
     let _ = writeln!(
         out,
@@ -482,7 +544,11 @@ pub fn inspect_text(summary: &serde_json::Value) -> String {
             out,
             "  set {:<12} {} clips {:>4} frames {:>7} model frames {:>7} speed x{:.2} motion {} -> {} gap {} -> {}",
             set.name,
-            if set.labelled { "labelled  " } else { "unlabelled" },
+            if set.labelled {
+                "labelled  "
+            } else {
+                "unlabelled"
+            },
             set.clips,
             set.frames,
             set.model_frames,
@@ -501,7 +567,11 @@ pub fn inspect_text(summary: &serde_json::Value) -> String {
             o.id,
             o.estimate.estimated_s,
             o.estimate.correlation,
-            if o.estimate.trusted { "" } else { "  NOT TRUSTED, 0 used" }
+            if o.estimate.trusted {
+                ""
+            } else {
+                "  NOT TRUSTED, 0 used"
+            }
         );
     }
     out

@@ -109,7 +109,9 @@ impl AlignedClip {
         let decode_actions = info.actions.clone().or(record.actions);
         let positions = model_positions(frames.len() as u32, info.speed_factor);
         let copy = if alignment.copy_frames {
-            Some(FrameReader::open(&ClipRecord::frames_path(align_dir, &info.set, &info.id))?)
+            Some(FrameReader::open(&ClipRecord::frames_path(
+                align_dir, &info.set, &info.id,
+            ))?)
         } else {
             None
         };
@@ -233,7 +235,9 @@ impl AlignedClip {
             let (a, b) = (self.frames.frame(k0), self.frames.frame(k0 + 1));
             let (wa, wb) = ((1.0 - w) as f32, w as f32);
             for ((o, &x), &y) in out.iter_mut().zip(a).zip(b) {
-                *o = (wa * f32::from(x) + wb * f32::from(y)).round().clamp(0.0, 255.0) as u8;
+                *o = (wa * f32::from(x) + wb * f32::from(y))
+                    .round()
+                    .clamp(0.0, 255.0) as u8;
             }
         }
     }
@@ -261,7 +265,11 @@ impl AlignedClip {
             .collect()
     }
 
-    fn decode_to_model(&self, values: &[Vec<f32>], rules: &[MapRule]) -> Result<Vec<Vec<f32>>, AlignError> {
+    fn decode_to_model(
+        &self,
+        values: &[Vec<f32>],
+        rules: &[MapRule],
+    ) -> Result<Vec<Vec<f32>>, AlignError> {
         let n = values.len();
         let start: Vec<f64> = (0..n).map(|k| k as f64 / self.fps).collect();
         let end: Vec<f64> = (0..n).map(|k| (k + 1) as f64 / self.fps).collect();
@@ -277,7 +285,10 @@ impl AlignedClip {
         targets: &[Interval],
     ) -> Result<Vec<Vec<f32>>, AlignError> {
         let dims = rules.len();
-        let flat: Vec<f64> = values.iter().flat_map(|r| r.iter().map(|&v| f64::from(v))).collect();
+        let flat: Vec<f64> = values
+            .iter()
+            .flat_map(|r| r.iter().map(|&v| f64::from(v)))
+            .collect();
         let series = Series {
             start,
             end,
@@ -293,7 +304,11 @@ impl AlignedClip {
 
     /// Maps per-model-transition values (`len() - 1` rows, one value per rule) onto the decode
     /// transitions (`decode_len() - 1` rows) with the hold / mean / sum rules.
-    pub fn to_decode_grid(&self, values: &[Vec<f32>], rules: &[MapRule]) -> Result<Vec<Vec<f32>>, AlignError> {
+    pub fn to_decode_grid(
+        &self,
+        values: &[Vec<f32>],
+        rules: &[MapRule],
+    ) -> Result<Vec<Vec<f32>>, AlignError> {
         let expected = self.len().saturating_sub(1);
         if values.len() != expected {
             return Err(AlignError::SeriesLength {
@@ -316,8 +331,15 @@ impl AlignedClip {
     /// Like [`Self::to_decode_grid`] for standard deviations: variances are mapped with the
     /// same rules (errors of different model transitions taken as independent) and the
     /// square root is returned.
-    pub fn to_decode_grid_std(&self, std: &[Vec<f32>], rules: &[MapRule]) -> Result<Vec<Vec<f32>>, AlignError> {
-        let var: Vec<Vec<f32>> = std.iter().map(|r| r.iter().map(|s| s * s).collect()).collect();
+    pub fn to_decode_grid_std(
+        &self,
+        std: &[Vec<f32>],
+        rules: &[MapRule],
+    ) -> Result<Vec<Vec<f32>>, AlignError> {
+        let var: Vec<Vec<f32>> = std
+            .iter()
+            .map(|r| r.iter().map(|s| s * s).collect())
+            .collect();
         Ok(self
             .to_decode_grid(&var, rules)?
             .into_iter()
@@ -349,7 +371,10 @@ impl AlignedRun {
     }
 
     /// [`Self::open`] when the align stage has written its file, else [`Self::passthrough`].
-    pub fn open_or_passthrough(run_dir: &Path, actions: &ActionsOptions) -> Result<Self, AlignError> {
+    pub fn open_or_passthrough(
+        run_dir: &Path,
+        actions: &ActionsOptions,
+    ) -> Result<Self, AlignError> {
         if alignment_path(run_dir).exists() {
             Self::open(run_dir)
         } else {
@@ -444,22 +469,32 @@ fn walk(dir: &Path, out: &mut Vec<PathBuf>) -> Result<(), AlignError> {
 }
 
 /// The rules for the decoded clips' action dimensions.
-pub(crate) fn rules_of(records: &[ClipRecord], actions: &ActionsOptions) -> Result<(Vec<String>, Vec<MapRule>), AlignError> {
-    let Some(first) = records.iter().find(|r| r.labelled && !r.action_dims.is_empty()) else {
+pub(crate) fn rules_of(
+    records: &[ClipRecord],
+    actions: &ActionsOptions,
+) -> Result<(Vec<String>, Vec<MapRule>), AlignError> {
+    let Some(first) = records
+        .iter()
+        .find(|r| r.labelled && !r.action_dims.is_empty())
+    else {
         return Ok((Vec::new(), Vec::new()));
     };
-    let rules = rules_for(&first.action_dims, &actions.map, actions.default_rule).map_err(|source| {
-        AlignError::Actions {
-            set: first.set.clone(),
-            id: first.id.clone(),
-            source: Box::new(source),
-        }
-    })?;
+    let rules =
+        rules_for(&first.action_dims, &actions.map, actions.default_rule).map_err(|source| {
+            AlignError::Actions {
+                set: first.set.clone(),
+                id: first.id.clone(),
+                source: Box::new(source),
+            }
+        })?;
     Ok((first.action_dims.clone(), rules))
 }
 
 /// An alignment that changes nothing.
-pub(crate) fn identity_alignment(records: &[ClipRecord], actions: &ActionsOptions) -> Result<Alignment, AlignError> {
+pub(crate) fn identity_alignment(
+    records: &[ClipRecord],
+    actions: &ActionsOptions,
+) -> Result<Alignment, AlignError> {
     let (action_dims, rules) = rules_of(records, actions)?;
     let first = &records[0];
     for r in records {

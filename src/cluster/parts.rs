@@ -95,12 +95,17 @@ pub fn chain(spec: &Spec, clips: &[FingerprintedClip]) -> BTreeMap<Stage, (Strin
 
 /// Lists and fingerprints the spec's clips.
 pub fn fingerprinted(spec: &Spec, threads: usize) -> Result<Vec<FingerprintedClip>, ClusterError> {
-    Ok(runner::fingerprint(&crate::inputs::list_all(spec)?, threads))
+    Ok(runner::fingerprint(
+        &crate::inputs::list_all(spec)?,
+        threads,
+    ))
 }
 
 fn manifest_key(run_dir: &Path, stage: Stage) -> Result<Option<String>, ClusterError> {
     let path = StageManifest::path(run_dir, stage.name());
-    Ok(StageManifest::read(run_dir, stage.name()).map_err(io_err(&path))?.map(|m| m.key))
+    Ok(StageManifest::read(run_dir, stage.name())
+        .map_err(io_err(&path))?
+        .map(|m| m.key))
 }
 
 /// Whether part `part` of `stage` is done under `key`.
@@ -109,7 +114,12 @@ pub fn part_done(run_dir: &Path, stage: Stage, part: Partition, key: &str) -> bo
 }
 
 /// Runs part `part` of `stage` (decode or label); the previous stage must be done.
-pub fn run_part(spec: &Spec, stage: Stage, part: Partition, threads: usize) -> Result<PartOutcome, ClusterError> {
+pub fn run_part(
+    spec: &Spec,
+    stage: Stage,
+    part: Partition,
+    threads: usize,
+) -> Result<PartOutcome, ClusterError> {
     if !is_partitioned(stage) {
         return Err(ClusterError::NotPartitioned(stage));
     }
@@ -158,9 +168,13 @@ pub fn run_part(spec: &Spec, stage: Stage, part: Partition, threads: usize) -> R
     manifest.key = key.clone();
     manifest.settings_hash = settings;
     if let Some(prev) = stage.previous() {
-        manifest.inputs.insert(format!("{}-stage-key", prev.name()), previous_key);
+        manifest
+            .inputs
+            .insert(format!("{}-stage-key", prev.name()), previous_key);
     }
-    manifest.timings.insert("total_s".into(), started.elapsed().as_secs_f64());
+    manifest
+        .timings
+        .insert("total_s".into(), started.elapsed().as_secs_f64());
     let record = PartManifest {
         stage: stage.name().to_string(),
         index: part.index,
@@ -180,7 +194,12 @@ pub fn run_part(spec: &Spec, stage: Stage, part: Partition, threads: usize) -> R
 
 /// Folds the `count` parts of `stage` into its stage manifest, refusing when
 /// a part is missing or was made from other settings or inputs.
-pub fn merge(spec: &Spec, stage: Stage, count: u32, threads: usize) -> Result<MergeOutcome, ClusterError> {
+pub fn merge(
+    spec: &Spec,
+    stage: Stage,
+    count: u32,
+    threads: usize,
+) -> Result<MergeOutcome, ClusterError> {
     if !is_partitioned(stage) {
         return Err(ClusterError::NotPartitioned(stage));
     }
@@ -237,19 +256,26 @@ pub fn merge(spec: &Spec, stage: Stage, count: u32, threads: usize) -> Result<Me
             };
             let mut m = runner::run_stage(stage, &ctx)?;
             if let Some(prev) = stage.previous() {
-                m.inputs.insert(format!("{}-stage-key", prev.name()), keys[&prev].1.clone());
+                m.inputs
+                    .insert(format!("{}-stage-key", prev.name()), keys[&prev].1.clone());
             }
             m
         }
     };
     manifest.stage = stage.name().to_string();
     manifest.tool_version = crate::VERSION.to_string();
-    manifest.inputs.insert("spec".into(), spec.text_hash.clone());
-    manifest.inputs.insert("spec-path".into(), spec.path.display().to_string());
+    manifest
+        .inputs
+        .insert("spec".into(), spec.text_hash.clone());
+    manifest
+        .inputs
+        .insert("spec-path".into(), spec.path.display().to_string());
     manifest.key = key;
     manifest.settings_hash = keys[&stage].0.clone();
     manifest.timings.insert("parts".into(), count as f64);
-    manifest.timings.insert("merge_s".into(), started.elapsed().as_secs_f64());
+    manifest
+        .timings
+        .insert("merge_s".into(), started.elapsed().as_secs_f64());
     let path = StageManifest::path(&spec.out, stage.name());
     manifest.write(&spec.out).map_err(io_err(&path))?;
     Ok(MergeOutcome::Merged)
@@ -262,7 +288,12 @@ fn fold_decode(parts: &[PartManifest], clips: &[FingerprintedClip]) -> StageMani
         .enumerate()
         .map(|(i, c)| ((c.input.set.clone(), c.input.id.clone()), i))
         .collect();
-    let rank = |set: &str, id: &str| order.get(&(set.to_string(), id.to_string())).copied().unwrap_or(usize::MAX);
+    let rank = |set: &str, id: &str| {
+        order
+            .get(&(set.to_string(), id.to_string()))
+            .copied()
+            .unwrap_or(usize::MAX)
+    };
     let mut out = StageManifest::default();
     let mut lines: Vec<serde_json::Value> = Vec::new();
     let mut summary = serde_json::Map::new();
@@ -291,7 +322,9 @@ fn fold_decode(parts: &[PartManifest], clips: &[FingerprintedClip]) -> StageMani
         }
     }
     out.clips.sort_by_key(|c| rank(&c.set, &c.id));
-    let field = |v: &serde_json::Value, f: &str| v.get(f).and_then(|x| x.as_str()).unwrap_or("").to_string();
+    let field = |v: &serde_json::Value, f: &str| {
+        v.get(f).and_then(|x| x.as_str()).unwrap_or("").to_string()
+    };
     lines.sort_by_key(|l| rank(&field(l, "set"), &field(l, "id")));
     summary.insert("clips".into(), serde_json::Value::Array(lines));
     out.summary = serde_json::Value::Object(summary);

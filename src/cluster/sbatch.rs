@@ -64,7 +64,10 @@ pub struct SubmitReport {
 
 /// Quotes `s` for a POSIX shell.
 fn sh_quote(s: &str) -> String {
-    if !s.is_empty() && s.chars().all(|c| c.is_ascii_alphanumeric() || "/._-=:,+@".contains(c)) {
+    if !s.is_empty()
+        && s.chars()
+            .all(|c| c.is_ascii_alphanumeric() || "/._-=:,+@".contains(c))
+    {
         s.to_string()
     } else {
         format!("'{}'", s.replace('\'', r"'\''"))
@@ -82,7 +85,11 @@ pub fn array_spec(indices: &[u32]) -> String {
             i += 1;
             end = indices[i];
         }
-        out.push(if start == end { start.to_string() } else { format!("{start}-{end}") });
+        out.push(if start == end {
+            start.to_string()
+        } else {
+            format!("{start}-{end}")
+        });
         i += 1;
     }
     out.join(",")
@@ -127,8 +134,14 @@ pub fn plan(spec: &Spec, opts: &SubmitOptions) -> Result<Vec<JobPlan>, ClusterEr
     let mut pending: Vec<Stage> = Vec::new();
     let cpus = |r: &JobResources| format!("-j \"${{SLURM_CPUS_PER_TASK:-{}}}\"", r.cpus_per_task);
     let flush = |pending: &mut Vec<Stage>, jobs: &mut Vec<JobPlan>| {
-        let Some(last) = pending.last().copied() else { return };
-        let name: String = pending.iter().map(|s| s.name()).collect::<Vec<_>>().join("-");
+        let Some(last) = pending.last().copied() else {
+            return;
+        };
+        let name: String = pending
+            .iter()
+            .map(|s| s.name())
+            .collect::<Vec<_>>()
+            .join("-");
         // Resources of the heaviest stage in the group: its last one's table, else default.
         let r = pending
             .iter()
@@ -140,8 +153,17 @@ pub fn plan(spec: &Spec, opts: &SubmitOptions) -> Result<Vec<JobPlan>, ClusterEr
             .unwrap_or_else(|| spec.cluster.job(last.name()));
         let script = dir.join(format!("{}-{name}.sbatch", jobs.len() + 1));
         let mut text = header(&name, &r, &logs.join(format!("{name}-%j.out")), None);
-        text += &format!("exec {program} run {spec_path} --until {last} {}\n", cpus(&r));
-        jobs.push(JobPlan { name, script, array: None, text, job_id: None });
+        text += &format!(
+            "exec {program} run {spec_path} --until {last} {}\n",
+            cpus(&r)
+        );
+        jobs.push(JobPlan {
+            name,
+            script,
+            array: None,
+            text,
+            job_id: None,
+        });
         pending.clear();
     };
     for stage in Stage::ALL.into_iter().filter(|s| *s <= opts.until) {
@@ -161,7 +183,12 @@ pub fn plan(spec: &Spec, opts: &SubmitOptions) -> Result<Vec<JobPlan>, ClusterEr
             let r = spec.cluster.job(stage.name());
             let script = dir.join(format!("{}-{stage}.sbatch", jobs.len() + 1));
             let all: Vec<u32> = (0..n).collect();
-            let mut text = header(stage.name(), &r, &logs.join(format!("{stage}-%A_%a.out")), Some(&all));
+            let mut text = header(
+                stage.name(),
+                &r,
+                &logs.join(format!("{stage}-%A_%a.out")),
+                Some(&all),
+            );
             text += &format!(
                 "exec {program} run {spec_path} --stage {stage} --part \"${{SLURM_ARRAY_TASK_ID}}/{n}\" {}\n",
                 cpus(&r)
@@ -178,8 +205,17 @@ pub fn plan(spec: &Spec, opts: &SubmitOptions) -> Result<Vec<JobPlan>, ClusterEr
         let name = format!("merge-{stage}");
         let script = dir.join(format!("{}-{name}.sbatch", jobs.len() + 1));
         let mut text = header(&name, &r, &logs.join(format!("{name}-%j.out")), None);
-        text += &format!("exec {program} merge {spec_path} --stage {stage} --parts {n} {}\n", cpus(&r));
-        jobs.push(JobPlan { name, script, array: None, text, job_id: None });
+        text += &format!(
+            "exec {program} merge {spec_path} --stage {stage} --parts {n} {}\n",
+            cpus(&r)
+        );
+        jobs.push(JobPlan {
+            name,
+            script,
+            array: None,
+            text,
+            job_id: None,
+        });
     }
     flush(&mut pending, &mut jobs);
     if opts.until == Stage::Shard && spec.cluster.publish.is_some() {
@@ -187,7 +223,13 @@ pub fn plan(spec: &Spec, opts: &SubmitOptions) -> Result<Vec<JobPlan>, ClusterEr
         let script = dir.join(format!("{}-publish.sbatch", jobs.len() + 1));
         let mut text = header("publish", &r, &logs.join("publish-%j.out"), None);
         text += &format!("exec {program} publish {spec_path}\n");
-        jobs.push(JobPlan { name: "publish".into(), script, array: None, text, job_id: None });
+        jobs.push(JobPlan {
+            name: "publish".into(),
+            script,
+            array: None,
+            text,
+            job_id: None,
+        });
     }
     Ok(jobs)
 }
@@ -211,7 +253,8 @@ pub fn submit(spec: &Spec, opts: &SubmitOptions) -> Result<SubmitReport, Cluster
                 cmd.arg(format!("--array={}", array_spec(a)));
             }
             if let Some(p) = &previous {
-                cmd.arg(format!("--dependency=afterok:{p}")).arg("--kill-on-invalid-dep=yes");
+                cmd.arg(format!("--dependency=afterok:{p}"))
+                    .arg("--kill-on-invalid-dep=yes");
             }
             cmd.arg(&job.script);
             let out = cmd.output().map_err(|e| ClusterError::Sbatch {
@@ -241,7 +284,11 @@ pub fn submit(spec: &Spec, opts: &SubmitOptions) -> Result<SubmitReport, Cluster
         jobs,
         dry_run: opts.dry_run,
     };
-    let path = dir.join(if opts.dry_run { "plan.json" } else { "jobs.json" });
+    let path = dir.join(if opts.dry_run {
+        "plan.json"
+    } else {
+        "jobs.json"
+    });
     write_json_atomic(&path, &report).map_err(io_err(&path))?;
     Ok(report)
 }
@@ -255,10 +302,22 @@ impl SubmitReport {
             return t;
         }
         for j in &self.jobs {
-            let array = j.array.as_ref().map(|a| format!(" (array {})", array_spec(a))).unwrap_or_default();
+            let array = j
+                .array
+                .as_ref()
+                .map(|a| format!(" (array {})", array_spec(a)))
+                .unwrap_or_default();
             match &j.job_id {
-                Some(id) => t += &format!("{:<16} job {id}{array}  {}\n", j.name, j.script.display()),
-                None => t += &format!("{:<16} not submitted{array}  {}\n", j.name, j.script.display()),
+                Some(id) => {
+                    t += &format!("{:<16} job {id}{array}  {}\n", j.name, j.script.display())
+                }
+                None => {
+                    t += &format!(
+                        "{:<16} not submitted{array}  {}\n",
+                        j.name,
+                        j.script.display()
+                    )
+                }
             }
         }
         if self.dry_run {
@@ -266,7 +325,11 @@ impl SubmitReport {
             t += "  --dependency=afterok:<previous job id> --kill-on-invalid-dep=yes)\n";
             return t;
         }
-        let ids: Vec<&str> = self.jobs.iter().filter_map(|j| j.job_id.as_deref()).collect();
+        let ids: Vec<&str> = self
+            .jobs
+            .iter()
+            .filter_map(|j| j.job_id.as_deref())
+            .collect();
         t += &format!("follow:   squeue -j {}\n", ids.join(","));
         t += &format!(
             "history:  sacct -j {} --format=JobID,JobName,State,Elapsed,ExitCode  (needs Slurm accounting)\n",

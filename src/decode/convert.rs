@@ -55,10 +55,20 @@ pub(crate) fn plan(
         Crop::Center => {
             let b = if uw as u64 * oh as u64 > uh as u64 * ow as u64 {
                 let w = ((uh as f64 * ow as f64 / oh as f64).round() as u32).clamp(1, uw);
-                Rect { x: (uw - w) / 2, y: 0, w, h: uh }
+                Rect {
+                    x: (uw - w) / 2,
+                    y: 0,
+                    w,
+                    h: uh,
+                }
             } else {
                 let h = ((uw as f64 * oh as f64 / ow as f64).round() as u32).clamp(1, uh);
-                Rect { x: 0, y: (uh - h) / 2, w: uw, h }
+                Rect {
+                    x: 0,
+                    y: (uh - h) / 2,
+                    w: uw,
+                    h,
+                }
             };
             (b, out, (0, 0))
         }
@@ -66,7 +76,16 @@ pub(crate) fn plan(
             let s = (ow as f64 / uw as f64).min(oh as f64 / uh as f64);
             let cw = ((uw as f64 * s).round() as u32).clamp(1, ow);
             let ch = ((uh as f64 * s).round() as u32).clamp(1, oh);
-            (Rect { x: 0, y: 0, w: uw, h: uh }, (cw, ch), ((ow - cw) / 2, (oh - ch) / 2))
+            (
+                Rect {
+                    x: 0,
+                    y: 0,
+                    w: uw,
+                    h: uh,
+                },
+                (cw, ch),
+                ((ow - cw) / 2, (oh - ch) / 2),
+            )
         }
         Crop::Box { x, y, w, h } => {
             let fits = w > 0
@@ -82,12 +101,31 @@ pub(crate) fn plan(
     let (cw, ch) = coded;
     let b = upright_box;
     let crop = match rotation {
-        90 => Rect { x: b.y, y: ch - b.x - b.w, w: b.h, h: b.w },
-        180 => Rect { x: cw - b.x - b.w, y: ch - b.y - b.h, w: b.w, h: b.h },
-        270 => Rect { x: cw - b.y - b.h, y: b.x, w: b.h, h: b.w },
+        90 => Rect {
+            x: b.y,
+            y: ch - b.x - b.w,
+            w: b.h,
+            h: b.w,
+        },
+        180 => Rect {
+            x: cw - b.x - b.w,
+            y: ch - b.y - b.h,
+            w: b.w,
+            h: b.h,
+        },
+        270 => Rect {
+            x: cw - b.y - b.h,
+            y: b.x,
+            w: b.h,
+            h: b.w,
+        },
         _ => b,
     };
-    let scaled = if turned { (content.1, content.0) } else { content };
+    let scaled = if turned {
+        (content.1, content.0)
+    } else {
+        content
+    };
     Ok(Geometry {
         rotation,
         crop,
@@ -224,7 +262,12 @@ impl Converter {
             {
                 return Err("this pixel format cannot be cropped");
             }
-            let dst = [self.scaled, ptr::null_mut(), ptr::null_mut(), ptr::null_mut()];
+            let dst = [
+                self.scaled,
+                ptr::null_mut(),
+                ptr::null_mut(),
+                ptr::null_mut(),
+            ];
             let dst_stride = [self.stride as c_int, 0, 0, 0];
             let rows = ffi::sws_scale(
                 self.sws,
@@ -263,7 +306,11 @@ fn place(src: &[u8], stride: usize, (sw, sh): (usize, usize), g: Geometry, out: 
     let ow = g.out.0 as usize;
     let (px, py) = (g.place.0 as usize, g.place.1 as usize);
     // Upright size of the placed picture.
-    let (uw, uh) = if g.rotation % 180 == 90 { (sh, sw) } else { (sw, sh) };
+    let (uw, uh) = if g.rotation % 180 == 90 {
+        (sh, sw)
+    } else {
+        (sw, sh)
+    };
     if g.rotation == 0 {
         for y in 0..sh {
             let d = ((py + y) * ow + px) * 3;
@@ -293,29 +340,79 @@ mod tests {
     #[test]
     fn center_crop_of_wide_source() {
         let g = plan((640, 480), 0, Crop::Center, (64, 64)).unwrap();
-        assert_eq!(g.crop, Rect { x: 80, y: 0, w: 480, h: 480 });
+        assert_eq!(
+            g.crop,
+            Rect {
+                x: 80,
+                y: 0,
+                w: 480,
+                h: 480
+            }
+        );
         assert_eq!(g.scaled, (64, 64));
     }
 
     #[test]
     fn letterbox_pads_tall_sides() {
         let g = plan((640, 480), 0, Crop::None, (64, 64)).unwrap();
-        assert_eq!(g.crop, Rect { x: 0, y: 0, w: 640, h: 480 });
+        assert_eq!(
+            g.crop,
+            Rect {
+                x: 0,
+                y: 0,
+                w: 640,
+                h: 480
+            }
+        );
         assert_eq!((g.scaled, g.place), ((64, 48), (0, 8)));
     }
 
     #[test]
     fn box_maps_back_through_rotation() {
         // Coded 100x60 shown turned 90 degrees clockwise: upright 60x100.
-        let b = Crop::Box { x: 10, y: 20, w: 30, h: 40 };
+        let b = Crop::Box {
+            x: 10,
+            y: 20,
+            w: 30,
+            h: 40,
+        };
         let g = plan((100, 60), 90, b, (30, 40)).unwrap();
         // Upright (x', y') = coded (y', 59 - x'): x' in 10..40 -> coded y in 20..50.
-        assert_eq!(g.crop, Rect { x: 20, y: 20, w: 40, h: 30 });
+        assert_eq!(
+            g.crop,
+            Rect {
+                x: 20,
+                y: 20,
+                w: 40,
+                h: 30
+            }
+        );
         assert_eq!(g.scaled, (40, 30));
         let g = plan((100, 60), 270, b, (30, 40)).unwrap();
         // Upright (x', y') = coded (99 - y', x').
-        assert_eq!(g.crop, Rect { x: 40, y: 10, w: 40, h: 30 });
-        assert!(plan((100, 60), 0, Crop::Box { x: 90, y: 0, w: 20, h: 10 }, (8, 8)).is_err());
+        assert_eq!(
+            g.crop,
+            Rect {
+                x: 40,
+                y: 10,
+                w: 40,
+                h: 30
+            }
+        );
+        assert!(
+            plan(
+                (100, 60),
+                0,
+                Crop::Box {
+                    x: 90,
+                    y: 0,
+                    w: 20,
+                    h: 10
+                },
+                (8, 8)
+            )
+            .is_err()
+        );
     }
 
     #[test]
@@ -323,7 +420,12 @@ mod tests {
         // 2x1 scaled picture [A B] turned 90 clockwise becomes a 1x2 column [A; B].
         let g = Geometry {
             rotation: 90,
-            crop: Rect { x: 0, y: 0, w: 1, h: 2 },
+            crop: Rect {
+                x: 0,
+                y: 0,
+                w: 1,
+                h: 2,
+            },
             scaled: (2, 1),
             place: (0, 0),
             out: (1, 2),

@@ -11,13 +11,13 @@ mod probe;
 pub mod stage;
 pub mod video;
 
-pub use video::{DecodeError, DecodeStats, decode_clip, probe};
 pub use convert::cli_flags;
+pub use probe::{check_limits, probe_checked, upright_size};
 pub use stage::{
     ClipSummary, DecodeInspect, DecodeParams, DecodeStageError, DecodeSummary, decode_all, inspect,
     inspect_run, run_stage,
 };
-pub use probe::{check_limits, probe_checked, upright_size};
+pub use video::{DecodeError, DecodeStats, decode_clip, probe};
 
 use serde::{Deserialize, Serialize};
 

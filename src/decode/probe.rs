@@ -6,10 +6,10 @@ use std::ffi::c_int;
 use std::path::Path;
 use std::sync::Once;
 
-use ffmpeg_next as ffmpeg;
 use ffmpeg::ffi;
 use ffmpeg::format::context::Input;
 use ffmpeg::media;
+use ffmpeg_next as ffmpeg;
 
 use super::DecodeOptions;
 use super::error::DecodeError;
@@ -56,8 +56,8 @@ pub(crate) fn colour_of(
     use ffi::AVColorSpace as S;
     use ffi::AVPixelFormat as P;
     let desc = unsafe { ffi::av_pix_fmt_desc_get(format) };
-    let is_rgb = !desc.is_null()
-        && unsafe { (*desc).flags } & (ffi::AV_PIX_FMT_FLAG_RGB as u64) != 0;
+    let is_rgb =
+        !desc.is_null() && unsafe { (*desc).flags } & (ffi::AV_PIX_FMT_FLAG_RGB as u64) != 0;
     if is_rgb {
         return Colour {
             matrix: "rgb",
@@ -69,7 +69,11 @@ pub(crate) fn colour_of(
     }
     let jpeg_format = matches!(
         format,
-        P::AV_PIX_FMT_YUVJ420P | P::AV_PIX_FMT_YUVJ422P | P::AV_PIX_FMT_YUVJ444P | P::AV_PIX_FMT_YUVJ440P | P::AV_PIX_FMT_YUVJ411P
+        P::AV_PIX_FMT_YUVJ420P
+            | P::AV_PIX_FMT_YUVJ422P
+            | P::AV_PIX_FMT_YUVJ444P
+            | P::AV_PIX_FMT_YUVJ440P
+            | P::AV_PIX_FMT_YUVJ411P
     );
     let (full, range_guessed) = match range {
         ffi::AVColorRange::AVCOL_RANGE_JPEG => (true, false),
@@ -138,18 +142,25 @@ pub(crate) struct Opened {
 }
 
 fn rational(r: ffmpeg::Rational) -> Option<f64> {
-    (r.numerator() > 0 && r.denominator() > 0).then(|| r.numerator() as f64 / r.denominator() as f64)
+    (r.numerator() > 0 && r.denominator() > 0)
+        .then(|| r.numerator() as f64 / r.denominator() as f64)
 }
 
 /// Opens `path` and reads its stream facts (shared by [`probe`] and decoding).
 pub(crate) fn open(path: &Path) -> Result<Opened, DecodeError> {
     init();
     let owned = || path.to_path_buf();
-    let meta = std::fs::metadata(path).map_err(|source| DecodeError::Io { path: owned(), source })?;
+    let meta = std::fs::metadata(path).map_err(|source| DecodeError::Io {
+        path: owned(),
+        source,
+    })?;
     if meta.len() == 0 {
         return Err(DecodeError::Empty { path: owned() });
     }
-    let input = ffmpeg::format::input(path).map_err(|source| DecodeError::Open { path: owned(), source })?;
+    let input = ffmpeg::format::input(path).map_err(|source| DecodeError::Open {
+        path: owned(),
+        source,
+    })?;
     let Some(stream) = input.streams().best(media::Type::Video) else {
         return Err(DecodeError::NoVideo {
             path: owned(),

@@ -168,7 +168,10 @@ pub fn run_stage(ctx: &StageContext<'_>) -> Result<StageManifest, DecodeStageErr
         decode_dir: ctx.stage_dir.clone(),
         settings_hash: ctx.settings_hash.clone(),
     };
-    crate::storage::configure_scratch(spec.cluster.scratch.as_deref(), spec.cluster.scratch_limit_bytes);
+    crate::storage::configure_scratch(
+        spec.cluster.scratch.as_deref(),
+        spec.cluster.scratch_limit_bytes,
+    );
     // A part of a partitioned run decodes only its own clips (see `crate::cluster`).
     decode_part(&params, &|job: &ClipJob| ctx.includes(&job.set, &job.id))
 }
@@ -247,17 +250,35 @@ pub fn decode_part(
     };
     let mut keep = BTreeSet::new();
     for job in params.clips.iter().filter(|j| !include(j)) {
-        keep.insert(ClipRecord::record_path(&params.decode_dir, &job.set, &job.id));
-        keep.insert(ClipRecord::frames_path(&params.decode_dir, &job.set, &job.id));
+        keep.insert(ClipRecord::record_path(
+            &params.decode_dir,
+            &job.set,
+            &job.id,
+        ));
+        keep.insert(ClipRecord::frames_path(
+            &params.decode_dir,
+            &job.set,
+            &job.id,
+        ));
     }
     let (mut decoded, mut reused, mut skipped) = (0u64, 0u64, 0u64);
     let (mut frames, mut dropped, mut repeated) = (0u64, 0u64, 0u64);
     for (job, outcome) in selected.iter().zip(outcomes) {
-        manifest.inputs.insert(format!("{}/{}", job.set, job.id), job.sha256.clone());
+        manifest
+            .inputs
+            .insert(format!("{}/{}", job.set, job.id), job.sha256.clone());
         let (status, line) = match outcome {
             Outcome::Done(r, was_reused) => {
-                keep.insert(ClipRecord::record_path(&params.decode_dir, &job.set, &job.id));
-                keep.insert(ClipRecord::frames_path(&params.decode_dir, &job.set, &job.id));
+                keep.insert(ClipRecord::record_path(
+                    &params.decode_dir,
+                    &job.set,
+                    &job.id,
+                ));
+                keep.insert(ClipRecord::frames_path(
+                    &params.decode_dir,
+                    &job.set,
+                    &job.id,
+                ));
                 if was_reused {
                     reused += 1;
                 } else {
@@ -268,7 +289,12 @@ pub fn decode_part(
                 repeated += r.repeated;
                 let status = if was_reused { "reused" } else { "ok" };
                 (
-                    ClipStatus { id: job.id.clone(), set: job.set.clone(), status: status.into(), reason: None },
+                    ClipStatus {
+                        id: job.id.clone(),
+                        set: job.set.clone(),
+                        status: status.into(),
+                        reason: None,
+                    },
                     ClipSummary {
                         set: job.set.clone(),
                         id: job.id.clone(),
@@ -322,7 +348,9 @@ pub fn decode_part(
     for (k, v) in counts {
         manifest.counts.insert(k.into(), v);
     }
-    manifest.timings.insert("decode_s".into(), started.elapsed().as_secs_f64());
+    manifest
+        .timings
+        .insert("decode_s".into(), started.elapsed().as_secs_f64());
     manifest.summary = serde_json::to_value(&summary).expect("summary serialises");
     Ok(manifest)
 }
@@ -335,7 +363,10 @@ fn set_headers(clips: &[ClipJob]) -> BTreeMap<String, Vec<String>> {
         if headers.contains_key(&c.set) {
             continue;
         }
-        let local = c.sidecar.as_deref().and_then(|p| crate::storage::local_copy(p).ok());
+        let local = c
+            .sidecar
+            .as_deref()
+            .and_then(|p| crate::storage::local_copy(p).ok());
         if let Some(Ok(s)) = local.as_ref().map(|l| actions::read_sidecar(l.path())) {
             headers.insert(c.set.clone(), s.dims);
         }
@@ -359,7 +390,8 @@ fn clip_key(job: &ClipJob, params: &DecodeParams) -> String {
 
 /// An existing record made with `key` whose frame store is intact.
 fn reusable(decode_dir: &Path, job: &ClipJob, key: &str) -> Option<ClipRecord> {
-    let record: ClipRecord = read_json(&ClipRecord::record_path(decode_dir, &job.set, &job.id)).ok()?;
+    let record: ClipRecord =
+        read_json(&ClipRecord::record_path(decode_dir, &job.set, &job.id)).ok()?;
     if record.key != key {
         return None;
     }
@@ -383,12 +415,17 @@ fn decode_one(
         return Ok(Some((record, true)));
     }
     if job.sha256.is_empty() && !job.path.is_file() {
-        return Err(Box::new((None, format!("{}: the clip file cannot be read", job.path.display()))));
+        return Err(Box::new((
+            None,
+            format!("{}: the clip file cannot be read", job.path.display()),
+        )));
     }
     let opts = &params.opts;
     // A clip in object storage is fetched to node-local scratch and removed after.
-    let local = crate::storage::local_copy(&job.path).map_err(|e| Box::new((None, e.to_string())))?;
-    let mut source = probe_checked(local.path(), opts).map_err(|e| Box::new((None, e.to_string())))?;
+    let local =
+        crate::storage::local_copy(&job.path).map_err(|e| Box::new((None, e.to_string())))?;
+    let mut source =
+        probe_checked(local.path(), opts).map_err(|e| Box::new((None, e.to_string())))?;
     source.path = job.path.clone();
     let fail = |reason: String| Box::new((Some(source.clone()), reason));
     // Read the sidecar before decoding, so a bad one costs no decode time.
@@ -415,7 +452,8 @@ fn decode_one(
     let frames_path = ClipRecord::frames_path(&params.decode_dir, &job.set, &job.id);
     let mut writer = FrameWriter::create(&frames_path, opts.width, opts.height)
         .map_err(|e| fail(e.to_string()))?;
-    let mut stats = decode_clip(local.path(), opts, &mut writer).map_err(|e| fail(e.to_string()))?;
+    let mut stats =
+        decode_clip(local.path(), opts, &mut writer).map_err(|e| fail(e.to_string()))?;
     stats.source.path = job.path.clone();
     drop(local);
     let actions_mapped = match &sidecar {
@@ -443,7 +481,10 @@ fn decode_one(
         source: stats.source,
         fingerprint: job.sha256.clone(),
         key,
-        action_dims: sidecar.as_ref().map(|(s, _)| s.dims.clone()).unwrap_or_default(),
+        action_dims: sidecar
+            .as_ref()
+            .map(|(s, _)| s.dims.clone())
+            .unwrap_or_default(),
         actions: actions_mapped,
         sidecar: job.sidecar.clone().filter(|_| job.labelled),
         sidecar_fingerprint: job.sidecar_sha256.clone().filter(|_| job.labelled),
@@ -514,7 +555,11 @@ pub fn inspect(manifest: &StageManifest) -> Result<DecodeInspect, serde_json::Er
         size: summary.size,
         clips: summary.clips.len() as u64,
         decoded: summary.clips.iter().filter(done).count() as u64,
-        skipped: summary.clips.iter().filter(|c| c.status == "skipped").count() as u64,
+        skipped: summary
+            .clips
+            .iter()
+            .filter(|c| c.status == "skipped")
+            .count() as u64,
         frames: summary.clips.iter().map(|c| c.frames as u64).sum(),
         duration_s: summary.clips.iter().map(|c| c.duration_s).sum(),
         dropped: summary.clips.iter().map(|c| c.dropped).sum(),
@@ -528,7 +573,10 @@ pub fn inspect_run(run_dir: &Path) -> std::io::Result<DecodeInspect> {
     let manifest = StageManifest::read(run_dir, "decode")?.ok_or_else(|| {
         std::io::Error::new(
             std::io::ErrorKind::NotFound,
-            format!("{}: no decode manifest (run the decode stage first)", run_dir.display()),
+            format!(
+                "{}: no decode manifest (run the decode stage first)",
+                run_dir.display()
+            ),
         )
     })?;
     inspect(&manifest).map_err(|e| std::io::Error::new(std::io::ErrorKind::InvalidData, e))

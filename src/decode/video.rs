@@ -13,15 +13,15 @@
 
 use std::path::Path;
 
-use ffmpeg_next as ffmpeg;
 use ffmpeg::ffi;
 use ffmpeg::util::frame::Video as VideoFrame;
+use ffmpeg_next as ffmpeg;
 
 use super::DecodeOptions;
 use super::convert::{Converter, Geometry, plan};
-use super::probe::{Colour, check_limits, colour_of, open};
 pub use super::error::DecodeError;
 pub use super::probe::probe;
+use super::probe::{Colour, check_limits, colour_of, open};
 use crate::store::{FrameWriter, SourceInfo};
 
 /// Counts from decoding one clip.
@@ -88,11 +88,13 @@ impl Resampler<'_> {
                 self.convert_current()?;
             }
             let frame = self.next_k as u32;
-            self.writer.push(&self.rgb).map_err(|source| DecodeError::Store {
-                path: self.path.to_path_buf(),
-                frame,
-                source,
-            })?;
+            self.writer
+                .push(&self.rgb)
+                .map_err(|source| DecodeError::Store {
+                    path: self.path.to_path_buf(),
+                    frame,
+                    source,
+                })?;
             if self.current_uses > 0 {
                 self.repeated += 1;
             }
@@ -126,22 +128,28 @@ impl Resampler<'_> {
         };
         if self.converter.as_ref().map(|c| c.input) != Some((format, w, h)) {
             // First frame, or the stream changed size or format mid-clip.
-            let geom: Geometry = plan((w, h), self.rotation, self.opts.crop, (self.opts.width, self.opts.height))
-                .map_err(|(uw, uh)| match self.opts.crop {
-                    super::Crop::Box { x, y, w, h } => DecodeError::BadBox {
-                        path: self.path.to_path_buf(),
-                        x,
-                        y,
-                        w,
-                        h,
-                        width: uw,
-                        height: uh,
-                    },
-                    _ => unreachable!("only a fixed box can fail to fit"),
-                })?;
+            let geom: Geometry = plan(
+                (w, h),
+                self.rotation,
+                self.opts.crop,
+                (self.opts.width, self.opts.height),
+            )
+            .map_err(|(uw, uh)| match self.opts.crop {
+                super::Crop::Box { x, y, w, h } => DecodeError::BadBox {
+                    path: self.path.to_path_buf(),
+                    x,
+                    y,
+                    w,
+                    h,
+                    width: uw,
+                    height: uh,
+                },
+                _ => unreachable!("only a fixed box can fail to fit"),
+            })?;
             let colour = self.colour.expect("colour is chosen on the first frame");
             self.converter = None;
-            self.converter = Some(Converter::new(format, w, h, geom, colour, self.opts.scaler).map_err(&fail)?);
+            self.converter =
+                Some(Converter::new(format, w, h, geom, colour, self.opts.scaler).map_err(&fail)?);
         }
         let conv = self.converter.as_mut().expect("converter was just built");
         // SAFETY: `current` is a decoded frame matching the converter's input and
@@ -154,7 +162,11 @@ impl Resampler<'_> {
     }
 
     /// Takes a newly decoded frame (in `incoming`) as the displayed frame.
-    fn push_source(&mut self, incoming: &mut VideoFrame, time_base: f64) -> Result<(), DecodeError> {
+    fn push_source(
+        &mut self,
+        incoming: &mut VideoFrame,
+        time_base: f64,
+    ) -> Result<(), DecodeError> {
         let ts = incoming.timestamp().or(incoming.pts());
         let t = match (ts, self.origin) {
             (Some(ts), Some(o)) => (ts - o) as f64 * time_base,
@@ -179,7 +191,12 @@ impl Resampler<'_> {
             let f = unsafe { &*incoming.as_ptr() };
             // SAFETY: a decoded video frame's format is an AVPixelFormat value.
             let fmt: ffi::AVPixelFormat = unsafe { std::mem::transmute(f.format) };
-            self.colour = Some(colour_of(f.colorspace, f.color_range, fmt, self.coded_height));
+            self.colour = Some(colour_of(
+                f.colorspace,
+                f.color_range,
+                fmt,
+                self.coded_height,
+            ));
         }
         self.emit_until(t)?;
         if self.current_t.is_some() && self.current_uses == 0 {
@@ -223,13 +240,20 @@ pub fn decode_clip(
             source,
         }
     })?;
-    let mut decoder = ctx.decoder().video().map_err(|source| DecodeError::Decoder {
-        path: owned(),
-        codec: opened.info.codec.clone(),
-        source,
-    })?;
+    let mut decoder = ctx
+        .decoder()
+        .video()
+        .map_err(|source| DecodeError::Decoder {
+            path: owned(),
+            codec: opened.info.codec.clone(),
+            source,
+        })?;
     let time_base = opened.time_base;
-    let fallback_duration = if opened.info.fps > 0.0 { 1.0 / opened.info.fps } else { 1.0 / opts.fps };
+    let fallback_duration = if opened.info.fps > 0.0 {
+        1.0 / opened.info.fps
+    } else {
+        1.0 / opts.fps
+    };
     let mut rs = Resampler {
         path,
         opts,
@@ -279,11 +303,13 @@ pub fn decode_clip(
             });
         }
         packets += 1;
-        decoder.send_packet(&packet).map_err(|source| DecodeError::Decode {
-            path: owned(),
-            frame: rs.decoded,
-            source,
-        })?;
+        decoder
+            .send_packet(&packet)
+            .map_err(|source| DecodeError::Decode {
+                path: owned(),
+                frame: rs.decoded,
+                source,
+            })?;
         drain(&mut decoder, &mut incoming, &mut rs, time_base)?;
     }
     decoder.send_eof().map_err(|source| DecodeError::Decode {

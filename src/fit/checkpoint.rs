@@ -52,7 +52,11 @@ fn bytes_f32(b: &[u8]) -> Vec<f32> {
 }
 
 fn values(var: &Var) -> Result<Vec<f32>, FitError> {
-    Ok(var.as_tensor().flatten_all()?.to_dtype(DType::F32)?.to_vec1()?)
+    Ok(var
+        .as_tensor()
+        .flatten_all()?
+        .to_dtype(DType::F32)?
+        .to_vec1()?)
 }
 
 /// Sorted `(name, var)` pairs of a var map.
@@ -112,7 +116,11 @@ pub fn save_checkpoint(
     let mut tensors = Vec::with_capacity(vars.len() * 3);
     for (name, var) in vars {
         let shape = var.dims().to_vec();
-        tensors.push((format!("param/{name}"), shape.clone(), f32_bytes(&values(var)?)));
+        tensors.push((
+            format!("param/{name}"),
+            shape.clone(),
+            f32_bytes(&values(var)?),
+        ));
         let m = &moments[name];
         tensors.push((format!("adam-m/{name}"), shape.clone(), f32_bytes(&m.m)));
         tensors.push((format!("adam-v/{name}"), shape, f32_bytes(&m.v)));
@@ -121,13 +129,21 @@ pub fn save_checkpoint(
     meta.insert("step".into(), step.to_string());
     meta.insert(
         "rng".into(),
-        rng.iter().map(|w| format!("{w:016x}")).collect::<Vec<_>>().join(","),
+        rng.iter()
+            .map(|w| format!("{w:016x}"))
+            .collect::<Vec<_>>()
+            .join(","),
     );
     write(path, tensors, meta)
 }
 
 /// Writes a fitted model's parameters atomically.
-pub fn save_model(path: &Path, id: &Identity, network_json: &str, vars: &[(String, Var)]) -> Result<(), FitError> {
+pub fn save_model(
+    path: &Path,
+    id: &Identity,
+    network_json: &str,
+    vars: &[(String, Var)],
+) -> Result<(), FitError> {
     let mut tensors = Vec::with_capacity(vars.len());
     for (name, var) in vars {
         tensors.push((name.clone(), var.dims().to_vec(), f32_bytes(&values(var)?)));
@@ -144,12 +160,21 @@ fn corrupt(path: &Path, reason: impl Into<String>) -> FitError {
 
 /// Reads the metadata and checks the format, the network hash and the
 /// settings hash.
-fn check_identity(path: &Path, buf: &[u8], format: &str, id: &Identity) -> Result<HashMap<String, String>, FitError> {
-    let (_, header) = SafeTensors::read_metadata(buf).map_err(|e| corrupt(path, format!("not a safetensors file: {e}")))?;
+fn check_identity(
+    path: &Path,
+    buf: &[u8],
+    format: &str,
+    id: &Identity,
+) -> Result<HashMap<String, String>, FitError> {
+    let (_, header) = SafeTensors::read_metadata(buf)
+        .map_err(|e| corrupt(path, format!("not a safetensors file: {e}")))?;
     let meta = header.metadata().clone().unwrap_or_default();
     let got = meta.get("format").map(String::as_str).unwrap_or("");
     if got != format {
-        return Err(corrupt(path, format!("format is {got:?}, expected {format:?}")));
+        return Err(corrupt(
+            path,
+            format!("format is {got:?}, expected {format:?}"),
+        ));
     }
     let recorded_net = meta.get("network-hash").cloned().unwrap_or_default();
     if recorded_net != id.network {
@@ -188,14 +213,24 @@ fn load_into(
     let mut staged = Vec::with_capacity(vars.len());
     for (name, var) in vars {
         let key = format!("{prefix}{name}");
-        let view = st.tensor(&key).map_err(|_| corrupt(path, format!("no tensor {key}")))?;
+        let view = st
+            .tensor(&key)
+            .map_err(|_| corrupt(path, format!("no tensor {key}")))?;
         if view.dtype() != Dtype::F32 || view.shape() != var.dims() {
             return Err(corrupt(
                 path,
-                format!("tensor {key} is {:?} {:?}, the network has F32 {:?}", view.dtype(), view.shape(), var.dims()),
+                format!(
+                    "tensor {key} is {:?} {:?}, the network has F32 {:?}",
+                    view.dtype(),
+                    view.shape(),
+                    var.dims()
+                ),
             ));
         }
-        staged.push(Tensor::from_vec(bytes_f32(view.data()), var.shape(), var.device())?.to_dtype(var.dtype())?);
+        staged.push(
+            Tensor::from_vec(bytes_f32(view.data()), var.shape(), var.device())?
+                .to_dtype(var.dtype())?,
+        );
     }
     for ((_, var), t) in vars.iter().zip(staged) {
         var.set(&t)?;
@@ -204,7 +239,11 @@ fn load_into(
 }
 
 /// Restores parameters from a checkpoint and returns the rest of its state.
-pub fn load_checkpoint(path: &Path, id: &Identity, vars: &[(String, Var)]) -> Result<Restored, FitError> {
+pub fn load_checkpoint(
+    path: &Path,
+    id: &Identity,
+    vars: &[(String, Var)],
+) -> Result<Restored, FitError> {
     let buf = std::fs::read(path).map_err(FitError::io(path))?;
     // Identity, moments and metadata are checked before `load_into` sets any parameter.
     let meta = check_identity(path, &buf, CHECKPOINT_FORMAT, id)?;
@@ -212,9 +251,14 @@ pub fn load_checkpoint(path: &Path, id: &Identity, vars: &[(String, Var)]) -> Re
     let mut moments = BTreeMap::new();
     for (name, var) in vars {
         let get = |k: String| -> Result<Vec<f32>, FitError> {
-            let v = st.tensor(&k).map_err(|_| corrupt(path, format!("no tensor {k}")))?;
+            let v = st
+                .tensor(&k)
+                .map_err(|_| corrupt(path, format!("no tensor {k}")))?;
             if v.shape() != var.dims() || v.dtype() != Dtype::F32 {
-                return Err(corrupt(path, format!("tensor {k} has shape {:?}", v.shape())));
+                return Err(corrupt(
+                    path,
+                    format!("tensor {k} has shape {:?}", v.shape()),
+                ));
             }
             Ok(bytes_f32(v.data()))
         };
@@ -230,7 +274,11 @@ pub fn load_checkpoint(path: &Path, id: &Identity, vars: &[(String, Var)]) -> Re
         .ok_or_else(|| corrupt(path, "no step in metadata"))?;
     let words: Vec<u64> = meta
         .get("rng")
-        .map(|s| s.split(',').filter_map(|w| u64::from_str_radix(w, 16).ok()).collect())
+        .map(|s| {
+            s.split(',')
+                .filter_map(|w| u64::from_str_radix(w, 16).ok())
+                .collect()
+        })
         .unwrap_or_default();
     let rng: [u64; 4] = words
         .try_into()

@@ -40,8 +40,9 @@ pub fn shift_frame(src: &[u8], out: &mut [u8], width: usize, height: usize, dy: 
     }
 }
 
-/// Which split a clip belongs to.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+/// Which split a clip belongs to (by clip, never by frame); also the shards'
+/// `split` column.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Split {
     /// Training clips (every unlabelled clip is `train`).
@@ -87,7 +88,9 @@ pub fn split_counts(labelled: usize, calib: f64, holdout: f64) -> Result<SplitCo
             holdout: h,
         });
     }
-    let needed = (labelled + 1..labelled + 10_000).find(|&n| fits(n)).unwrap_or(usize::MAX);
+    let needed = (labelled + 1..labelled + 10_000)
+        .find(|&n| fits(n))
+        .unwrap_or(usize::MAX);
     Err(FitError::TooFewClips {
         labelled,
         needed,
@@ -257,23 +260,33 @@ impl Dataset {
         let run = AlignedRun::open_or_passthrough(run_dir, actions_opts)?;
         let views = run.clips();
         let Some(first) = views.first() else {
-            return Err(FitError::NoData { what: "decoded clips" });
+            return Err(FitError::NoData {
+                what: "decoded clips",
+            });
         };
         let (width, height) = (first.width() as usize, first.height() as usize);
         let dims = run.action_dims().to_vec();
         let mut clips = Vec::with_capacity(views.len());
         for (index, v) in views.iter().enumerate() {
             if (v.width() as usize, v.height() as usize) != (width, height) {
-                return Err(inconsistent(v, format!(
-                    "frames are {}x{}, other clips {width}x{height}",
-                    v.width(),
-                    v.height()
-                )));
+                return Err(inconsistent(
+                    v,
+                    format!(
+                        "frames are {}x{}, other clips {width}x{height}",
+                        v.width(),
+                        v.height()
+                    ),
+                ));
             }
             if v.labelled() {
                 match v.actions() {
                     Some(a) if a.iter().all(|r| r.len() == dims.len()) => {}
-                    _ => return Err(inconsistent(v, format!("actions do not have the {} dimensions {dims:?}", dims.len()))),
+                    _ => {
+                        return Err(inconsistent(
+                            v,
+                            format!("actions do not have the {} dimensions {dims:?}", dims.len()),
+                        ));
+                    }
                 }
             }
             clips.push(ClipInfo {
@@ -305,10 +318,16 @@ impl Dataset {
         let labelled_train = Pool::new(train_l, &clips);
         let unlabelled = Pool::new(unl, &clips);
         if labelled_train.len() == 0 {
-            return Err(FitError::NoData { what: "labelled train transitions" });
+            return Err(FitError::NoData {
+                what: "labelled train transitions",
+            });
         }
         let rows = labelled_train.clips.iter().flat_map(|&c| {
-            views[clips[c].index].actions().unwrap_or(&[]).iter().cloned()
+            views[clips[c].index]
+                .actions()
+                .unwrap_or(&[])
+                .iter()
+                .cloned()
         });
         let standardisation = Standardisation::fit(&dims, rows);
         Ok(Self {
@@ -374,7 +393,13 @@ impl Dataset {
     }
 
     /// Reads the frame pair of transition `i` of clip `info` into `a`, `b`.
-    pub fn pair(&self, info: &ClipInfo, i: usize, a: &mut [u8], b: &mut [u8]) -> Result<(), FitError> {
+    pub fn pair(
+        &self,
+        info: &ClipInfo,
+        i: usize,
+        a: &mut [u8],
+        b: &mut [u8],
+    ) -> Result<(), FitError> {
         let clip = self.clip(info);
         clip.frame(i, a)?;
         clip.frame(i + 1, b)?;
@@ -414,10 +439,18 @@ impl Dataset {
                 shift_frame(&tmp_a, &mut x_t[r * fb..(r + 1) * fb], w, h, dy, dx);
                 shift_frame(&tmp_b, &mut x_t1[r * fb..(r + 1) * fb], w, h, dy, dx);
             } else {
-                self.pair(info, i, &mut x_t[r * fb..(r + 1) * fb], &mut x_t1[r * fb..(r + 1) * fb])?;
+                self.pair(
+                    info,
+                    i,
+                    &mut x_t[r * fb..(r + 1) * fb],
+                    &mut x_t1[r * fb..(r + 1) * fb],
+                )?;
             }
             if labelled {
-                let row = &self.clip(info).actions().expect("labelled clip has actions")[i];
+                let row = &self
+                    .clip(info)
+                    .actions()
+                    .expect("labelled clip has actions")[i];
                 actions.extend(self.standardisation.apply(row));
                 picks.push(g);
             }

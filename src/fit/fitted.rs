@@ -71,7 +71,10 @@ impl ModelInfo {
 
     /// The split of clip `id` of `set` (unknown clips: `None`).
     pub fn split_of(&self, set: &str, id: &str) -> Option<Split> {
-        self.splits.iter().find(|c| c.set == set && c.id == id).map(|c| c.split)
+        self.splits
+            .iter()
+            .find(|c| c.set == set && c.id == id)
+            .map(|c| c.split)
     }
 }
 
@@ -121,7 +124,8 @@ impl FittedModel {
     /// Loads the named model (`semi` or `labelled-only`) from a fit folder.
     pub fn load_named(fit_dir: &Path, name: &str) -> Result<Self, FitError> {
         let info_path = fit_dir.join(MODEL_FILE);
-        let info: ModelInfo = crate::store::read_json(&info_path).map_err(FitError::io(&info_path))?;
+        let info: ModelInfo =
+            crate::store::read_json(&info_path).map_err(FitError::io(&info_path))?;
         if network_hash(&info.network) != info.network_hash {
             return Err(FitError::Corrupt {
                 path: info_path,
@@ -134,12 +138,20 @@ impl FittedModel {
         let vars = checkpoint::sorted_vars(&map);
         let path: PathBuf = super::train::model_path(fit_dir, name);
         checkpoint::load_model(&path, &info.identity(name), &vars)?;
-        Ok(Self { info, net, _map: map })
+        Ok(Self {
+            info,
+            net,
+            _map: map,
+        })
     }
 
     /// Wraps a network trained in this process.
     pub(crate) fn from_parts(info: ModelInfo, net: Net, map: VarMap) -> Self {
-        Self { info, net, _map: map }
+        Self {
+            info,
+            net,
+            _map: map,
+        }
     }
 
     /// The model description.
@@ -149,7 +161,12 @@ impl FittedModel {
 
     /// Inference on `n` frame pairs given as concatenated RGB8 frames of the
     /// network's size. Run it inside a rayon pool to bound its threads.
-    pub fn infer(&self, frames_t: &[u8], frames_t1: &[u8], n: usize) -> Result<InferOutput, FitError> {
+    pub fn infer(
+        &self,
+        frames_t: &[u8],
+        frames_t1: &[u8],
+        n: usize,
+    ) -> Result<InferOutput, FitError> {
         let cfg = &self.info.network;
         let fb = cfg.width * cfg.height * 3;
         if frames_t.len() != n * fb || frames_t1.len() != n * fb {
@@ -158,17 +175,38 @@ impl FittedModel {
             });
         }
         let dev = Device::Cpu;
-        let x_t = model::frames_to_tensor(frames_t.to_vec(), n, cfg.height, cfg.width, DType::F32, &dev)?;
-        let x_t1 = model::frames_to_tensor(frames_t1.to_vec(), n, cfg.height, cfg.width, DType::F32, &dev)?;
+        let x_t = model::frames_to_tensor(
+            frames_t.to_vec(),
+            n,
+            cfg.height,
+            cfg.width,
+            DType::F32,
+            &dev,
+        )?;
+        let x_t1 = model::frames_to_tensor(
+            frames_t1.to_vec(),
+            n,
+            cfg.height,
+            cfg.width,
+            DType::F32,
+            &dev,
+        )?;
         let out = self.net.infer(&x_t, &x_t1)?;
-        let flat = |t: &candle_core::Tensor| -> Result<Vec<f32>, FitError> { Ok(t.flatten_all()?.to_vec1()?) };
+        let flat = |t: &candle_core::Tensor| -> Result<Vec<f32>, FitError> {
+            Ok(t.flatten_all()?.to_vec1()?)
+        };
         Ok(InferOutput {
             n,
             posterior_mean: flat(&out.mu)?,
             heads: out
                 .heads
                 .iter()
-                .map(|(m, lv)| Ok(HeadOutput { mean: flat(m)?, logvar: flat(lv)? }))
+                .map(|(m, lv)| {
+                    Ok(HeadOutput {
+                        mean: flat(m)?,
+                        logvar: flat(lv)?,
+                    })
+                })
                 .collect::<Result<Vec<_>, FitError>>()?,
         })
     }
@@ -177,7 +215,10 @@ impl FittedModel {
     /// action units: the mean of the heads' means, and the standard deviation
     /// of the mixture (mean of the heads' variances, aleatoric, plus the
     /// variance of their means, epistemic).
-    pub fn predict_clip(&self, clip: &AlignedClip) -> Result<(Vec<Vec<f32>>, Vec<Vec<f32>>), FitError> {
+    pub fn predict_clip(
+        &self,
+        clip: &AlignedClip,
+    ) -> Result<(Vec<Vec<f32>>, Vec<Vec<f32>>), FitError> {
         let t = clip.len().saturating_sub(1);
         let fb = clip.frame_bytes();
         let a = self.info.standardisation.dims.len();
@@ -199,9 +240,20 @@ impl FittedModel {
                 let (mut mrow, mut srow) = (Vec::with_capacity(a), Vec::with_capacity(a));
                 for d in 0..a {
                     let i = r * a + d;
-                    let mu: f64 = out.heads.iter().map(|h| f64::from(h.mean[i])).sum::<f64>() / heads;
-                    let alea: f64 = out.heads.iter().map(|h| f64::from(h.logvar[i]).exp()).sum::<f64>() / heads;
-                    let epi: f64 = out.heads.iter().map(|h| (f64::from(h.mean[i]) - mu).powi(2)).sum::<f64>() / heads;
+                    let mu: f64 =
+                        out.heads.iter().map(|h| f64::from(h.mean[i])).sum::<f64>() / heads;
+                    let alea: f64 = out
+                        .heads
+                        .iter()
+                        .map(|h| f64::from(h.logvar[i]).exp())
+                        .sum::<f64>()
+                        / heads;
+                    let epi: f64 = out
+                        .heads
+                        .iter()
+                        .map(|h| (f64::from(h.mean[i]) - mu).powi(2))
+                        .sum::<f64>()
+                        / heads;
                     mrow.push(s.unapply_mean(d, mu) as f32);
                     srow.push(s.unapply_var(d, alea + epi).sqrt() as f32);
                 }

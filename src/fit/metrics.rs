@@ -119,7 +119,12 @@ impl<'a> Evaluator<'a> {
 
     /// Adds one clip: truth rows and, per model in order, (means, stds), all
     /// on the same transitions.
-    pub fn add_clip(&mut self, truth: &[Vec<f32>], preds: &[(Vec<Vec<f32>>, Vec<Vec<f32>>)], base: &Standardisation) {
+    pub fn add_clip(
+        &mut self,
+        truth: &[Vec<f32>],
+        preds: &[(Vec<Vec<f32>>, Vec<Vec<f32>>)],
+        base: &Standardisation,
+    ) {
         self.clips += 1;
         self.transitions += truth.len();
         for (k, row) in truth.iter().enumerate() {
@@ -172,7 +177,10 @@ pub fn decode_grid_predictions(
         .iter()
         .map(|m| {
             let (mean, std) = m.predict_clip(clip)?;
-            Ok((clip.to_decode_grid(&mean, rules)?, clip.to_decode_grid_std(&std, rules)?))
+            Ok((
+                clip.to_decode_grid(&mean, rules)?,
+                clip.to_decode_grid_std(&std, rules)?,
+            ))
         })
         .collect()
 }
@@ -185,7 +193,12 @@ pub fn read_truth(path: &Path, dims: &[String]) -> Result<Vec<Vec<f32>>, FitErro
         reason: format!("line {line}: {reason}"),
     };
     let mut lines = text.lines();
-    let header: Vec<&str> = lines.next().unwrap_or("").split(',').map(str::trim).collect();
+    let header: Vec<&str> = lines
+        .next()
+        .unwrap_or("")
+        .split(',')
+        .map(str::trim)
+        .collect();
     let cols: Vec<usize> = dims
         .iter()
         .map(|d| {

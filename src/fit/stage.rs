@@ -104,12 +104,24 @@ pub fn run_stage(ctx: &crate::runner::StageContext<'_>) -> Result<StageManifest,
         progress: true,
     })?;
     let mut m = StageManifest::default();
-    m.counts.insert("train_clips".into(), summary.splits.train as u64);
-    m.counts.insert("calib_clips".into(), summary.splits.calib as u64);
-    m.counts.insert("holdout_clips".into(), summary.splits.holdout as u64);
-    m.counts.insert("labelled_transitions".into(), summary.labelled_transitions as u64);
-    m.counts.insert("unlabelled_transitions".into(), summary.unlabelled_transitions as u64);
-    m.counts.insert("eval_truth_sets".into(), summary.eval_truth_used.len() as u64);
+    m.counts
+        .insert("train_clips".into(), summary.splits.train as u64);
+    m.counts
+        .insert("calib_clips".into(), summary.splits.calib as u64);
+    m.counts
+        .insert("holdout_clips".into(), summary.splits.holdout as u64);
+    m.counts.insert(
+        "labelled_transitions".into(),
+        summary.labelled_transitions as u64,
+    );
+    m.counts.insert(
+        "unlabelled_transitions".into(),
+        summary.unlabelled_transitions as u64,
+    );
+    m.counts.insert(
+        "eval_truth_sets".into(),
+        summary.eval_truth_used.len() as u64,
+    );
     for r in &summary.models {
         m.timings.insert(format!("{}_s", r.name), r.seconds);
     }
@@ -142,7 +154,13 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
     let opts = &spec.fit;
     let dir = &inputs.stage_dir;
     std::fs::create_dir_all(dir).map_err(FitError::io(dir))?;
-    let mut ds = Dataset::open(&inputs.run_dir, &spec.actions, spec.seed, opts.calib_fraction, opts.holdout_fraction)?;
+    let mut ds = Dataset::open(
+        &inputs.run_dir,
+        &spec.actions,
+        spec.seed,
+        opts.calib_fraction,
+        opts.holdout_fraction,
+    )?;
     let std = ds.standardisation.clone();
     let cfg = opts.network(ds.width, ds.height, ds.action_dims());
     let info = ModelInfo {
@@ -194,7 +212,11 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
                 0.0
             },
         });
-        fitted_models.push(FittedModel::from_parts(info.clone(), trained.net, trained.map));
+        fitted_models.push(FittedModel::from_parts(
+            info.clone(),
+            trained.net,
+            trained.map,
+        ));
     }
 
     // Written once the model files exist, so `model.json` always describes them.
@@ -209,16 +231,24 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
     let dims = std.dims.clone();
     let mut tables = Vec::new();
     let mut holdout = Evaluator::new(&dims, &names);
-    for c in ds.clips.iter().filter(|c| c.labelled && c.split == Split::Holdout) {
+    for c in ds
+        .clips
+        .iter()
+        .filter(|c| c.labelled && c.split == Split::Holdout)
+    {
         let clip = ds.clip(c);
-        let Some(truth) = clip.decode_actions() else { continue };
+        let Some(truth) = clip.decode_actions() else {
+            continue;
+        };
         let preds = metrics::decode_grid_predictions(&refs, clip, &rules)?;
         holdout.add_clip(truth, &preds, &std);
     }
     tables.push(holdout.finish("holdout"));
     let mut truth_used = Vec::new();
     for set in spec.sets.iter().filter(|s| !s.labelled) {
-        let Some(truth_dir) = &set.eval_truth else { continue };
+        let Some(truth_dir) = &set.eval_truth else {
+            continue;
+        };
         truth_used.push(set.name.clone());
         let mut ev = Evaluator::new(&dims, &names);
         let mut missing = Vec::new();
@@ -290,13 +320,23 @@ pub fn inspect_text(run_dir: &Path) -> Result<String, FitError> {
     let _ = writeln!(
         out,
         "labelled clips: {} train, {} calib, {} holdout; {} labelled and {} unlabelled train transitions",
-        s.splits.train, s.splits.calib, s.splits.holdout, s.labelled_transitions, s.unlabelled_transitions
+        s.splits.train,
+        s.splits.calib,
+        s.splits.holdout,
+        s.labelled_transitions,
+        s.unlabelled_transitions
     );
     if !s.constant_dims.is_empty() {
-        let _ = writeln!(out, "constant action dimensions (R^2 undefined): {}", s.constant_dims.join(", "));
+        let _ = writeln!(
+            out,
+            "constant action dimensions (R^2 undefined): {}",
+            s.constant_dims.join(", ")
+        );
     }
     for r in &s.models {
-        let resumed = r.resumed_from.map_or(String::new(), |f| format!(", resumed at step {f}"));
+        let resumed = r
+            .resumed_from
+            .map_or(String::new(), |f| format!(", resumed at step {f}"));
         let _ = writeln!(
             out,
             "model {}: {} steps, {:.1} s, {:.0} pairs/s on {} threads{resumed}",
@@ -311,17 +351,33 @@ pub fn inspect_text(run_dir: &Path) -> Result<String, FitError> {
         );
     }
     for t in &s.metrics {
-        let _ = writeln!(out, "\n{} ({} clips, {} transitions)", t.name, t.clips, t.transitions);
+        let _ = writeln!(
+            out,
+            "\n{} ({} clips, {} transitions)",
+            t.name, t.clips, t.transitions
+        );
         let mut header = format!("{:<15} {:>8}", "model", "mean R2");
         for d in &s.action_dims {
-            let _ = write!(header, " | {:>8} {:>8} {:>8}", format!("{d} R2"), "MAE", "NLL");
+            let _ = write!(
+                header,
+                " | {:>8} {:>8} {:>8}",
+                format!("{d} R2"),
+                "MAE",
+                "NLL"
+            );
         }
         let _ = writeln!(out, "{header}");
         for (name, m) in &t.models {
             let mut line = format!("{:<15} {:>8}", name, fmt_opt(m.mean_r2));
             for d in &s.action_dims {
                 if let Some(dm) = m.dims.get(d) {
-                    let _ = write!(line, " | {:>8} {:>8.4} {:>8.3}", fmt_opt(dm.r2), dm.mae, dm.nll);
+                    let _ = write!(
+                        line,
+                        " | {:>8} {:>8.4} {:>8.3}",
+                        fmt_opt(dm.r2),
+                        dm.mae,
+                        dm.nll
+                    );
                 }
             }
             let _ = writeln!(out, "{line}");

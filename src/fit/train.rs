@@ -19,7 +19,7 @@ use super::FitError;
 use super::FitOptions;
 use super::checkpoint::{self, Identity};
 use super::data::{Dataset, REOPEN_EVERY};
-use crate::model::{self, AdamW, AdamWParams, Batch, Bandwidth, LossOptions, Net, Rng, SeededInit};
+use crate::model::{self, AdamW, AdamWParams, Bandwidth, Batch, LossOptions, Net, Rng, SeededInit};
 
 /// Header of the per-step log.
 pub const LOG_HEADER: &str = "step,total,recon,kl,action,align,variance,sigma,lr";
@@ -60,7 +60,9 @@ pub struct Trained {
 
 /// `RUN/fit/checkpoints/<name>.safetensors`.
 pub fn checkpoint_path(stage_dir: &Path, name: &str) -> PathBuf {
-    stage_dir.join("checkpoints").join(format!("{name}.safetensors"))
+    stage_dir
+        .join("checkpoints")
+        .join(format!("{name}.safetensors"))
 }
 
 /// `RUN/fit/<name>.log.csv`.
@@ -147,7 +149,8 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
         resumed_from = Some(start);
         cut_log(&log, start)?;
     } else {
-        crate::store::write_atomic(&log, format!("{LOG_HEADER}\n").as_bytes()).map_err(FitError::io(&log))?;
+        crate::store::write_atomic(&log, format!("{LOG_HEADER}\n").as_bytes())
+            .map_err(FitError::io(&log))?;
     }
     let mut log_file = std::fs::OpenOptions::new()
         .append(true)
@@ -166,7 +169,13 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
         align_weight: if n_u > 0 { opts.align_weight } else { 0.0 },
         bandwidth: Bandwidth::Median,
     };
-    let (w, h, a, k, heads) = (ds.width, ds.height, ds.action_dims(), spec.cfg.latent, spec.cfg.heads);
+    let (w, h, a, k, heads) = (
+        ds.width,
+        ds.height,
+        ds.action_dims(),
+        spec.cfg.latent,
+        spec.cfg.heads,
+    );
     let dev = Device::Cpu;
     let pb = progress_bar(opts.steps, spec.name, spec.progress);
     pb.set_position(u64::from(start));
@@ -178,7 +187,11 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
         let lr = learning_rate(opts.learning_rate, step, opts.steps);
         opt.set_lr(lr);
         let raw = ds.sample(&mut rng, n_l, n_u, &boot)?;
-        let eps: Vec<f32> = rng.normals(raw.n * k).into_iter().map(|v| v as f32).collect();
+        let eps: Vec<f32> = rng
+            .normals(raw.n * k)
+            .into_iter()
+            .map(|v| v as f32)
+            .collect();
         let batch = Batch {
             x_t: model::frames_to_tensor(raw.x_t, raw.n, h, w, DType::F32, &dev)?,
             x_t1: model::frames_to_tensor(raw.x_t1, raw.n, h, w, DType::F32, &dev)?,
@@ -190,9 +203,16 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
         let parts = net.loss(&batch, &loss_opts)?;
         let mut vals = [0f64; 6];
         let names = ["total", "recon", "kl", "action", "align", "variance"];
-        for (i, t) in [&parts.total, &parts.recon, &parts.kl, &parts.action, &parts.align, &parts.variance]
-            .into_iter()
-            .enumerate()
+        for (i, t) in [
+            &parts.total,
+            &parts.recon,
+            &parts.kl,
+            &parts.action,
+            &parts.align,
+            &parts.variance,
+        ]
+        .into_iter()
+        .enumerate()
         {
             vals[i] = f64::from(t.to_dtype(DType::F32)?.to_scalar::<f32>()?);
         }
@@ -223,12 +243,25 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
         if step % opts.checkpoint_every.max(1) == 0 || step == opts.steps {
             log_file.flush().map_err(FitError::io(&log))?;
             let (_, moments) = opt.state();
-            checkpoint::save_checkpoint(&ckpt, &spec.identity, &network_json, &vars, step, rng.state(), &moments)?;
+            checkpoint::save_checkpoint(
+                &ckpt,
+                &spec.identity,
+                &network_json,
+                &vars,
+                step,
+                rng.state(),
+                &moments,
+            )?;
         }
     }
     pb.finish_and_clear();
     let steps_run = opts.steps - start;
-    checkpoint::save_model(&model_path(spec.stage_dir, spec.name), &spec.identity, &network_json, &vars)?;
+    checkpoint::save_model(
+        &model_path(spec.stage_dir, spec.name),
+        &spec.identity,
+        &network_json,
+        &vars,
+    )?;
     Ok(Trained {
         map,
         net,

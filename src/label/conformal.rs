@@ -44,7 +44,9 @@ pub fn rank(n: usize, alpha: f64) -> usize {
 
 /// Fewest calibration points for which the quantile is finite at `alpha`.
 pub fn min_points(alpha: f64) -> usize {
-    (1..).find(|&n| rank(n, alpha) <= n).expect("alpha in (0, 1)")
+    (1..)
+        .find(|&n| rank(n, alpha) <= n)
+        .expect("alpha in (0, 1)")
 }
 
 /// The split conformal quantile of `scores` at miscoverage `alpha`.

@@ -8,7 +8,9 @@ use std::collections::BTreeMap;
 use std::path::Path;
 
 use super::LabelError;
-use super::model::{FitOutputs, FramePrep, ModelFailure, Split, Splits, Standardisation, TransitionBatch, TransitionModel};
+use super::model::{
+    FitOutputs, FramePrep, ModelFailure, Splits, Standardisation, TransitionBatch, TransitionModel,
+};
 use crate::align::color::LabTransform;
 use crate::fit::FittedModel;
 use crate::store::ClipRecord;
@@ -49,7 +51,8 @@ impl TransitionModel for FitModel {
         for i in 0..n {
             for h in &out.heads {
                 b.head_mean.extend_from_slice(&h.mean[i * a..(i + 1) * a]);
-                b.head_logvar.extend_from_slice(&h.logvar[i * a..(i + 1) * a]);
+                b.head_logvar
+                    .extend_from_slice(&h.logvar[i * a..(i + 1) * a]);
             }
         }
         Ok(b)
@@ -72,14 +75,7 @@ pub fn load_fit_outputs(run_dir: &Path) -> Result<FitOutputs, LabelError> {
     let splits: Splits = info
         .splits
         .iter()
-        .map(|c| {
-            let split = match c.split {
-                crate::fit::Split::Train => Split::Train,
-                crate::fit::Split::Calib => Split::Calib,
-                crate::fit::Split::Holdout => Split::Holdout,
-            };
-            ((c.set.clone(), c.id.clone()), split)
-        })
+        .map(|c| ((c.set.clone(), c.id.clone()), c.split))
         .collect();
     Ok(FitOutputs {
         model: Box::new(FitModel { model, st }),
@@ -95,14 +91,16 @@ pub struct AlignColour {
 impl AlignColour {
     /// Reads `RUN/align/` (no alignment output: no normalisation).
     pub fn load(run_dir: &Path) -> Self {
-        let maps = crate::store::read_json::<crate::align::Alignment>(&crate::align::view::alignment_path(run_dir))
-            .map(|a| {
-                a.clips
-                    .into_iter()
-                    .filter_map(|c| c.photometric.map(|p| ((c.set, c.id), p)))
-                    .collect()
-            })
-            .unwrap_or_default();
+        let maps = crate::store::read_json::<crate::align::Alignment>(
+            &crate::align::view::alignment_path(run_dir),
+        )
+        .map(|a| {
+            a.clips
+                .into_iter()
+                .filter_map(|c| c.photometric.map(|p| ((c.set, c.id), p)))
+                .collect()
+        })
+        .unwrap_or_default();
         Self { maps }
     }
 }

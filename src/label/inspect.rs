@@ -35,9 +35,15 @@ impl LabelInspection {
             c.calib_transitions,
             c.holdout_transitions
         );
-        let _ = writeln!(out, "  {:<12} {:>10} {:>10} {:>10} {:>12}", "dim", "quantile", "calib", "holdout", "tolerance");
+        let _ = writeln!(
+            out,
+            "  {:<12} {:>10} {:>10} {:>10} {:>12}",
+            "dim", "quantile", "calib", "holdout", "tolerance"
+        );
         for d in &c.dims {
-            let h = d.holdout_coverage.map_or("-".to_string(), |v| format!("{v:.3}"));
+            let h = d
+                .holdout_coverage
+                .map_or("-".to_string(), |v| format!("{v:.3}"));
             let _ = writeln!(
                 out,
                 "  {:<12} {:>10.4} {:>10.3} {:>10} {:>12.5}",
@@ -65,7 +71,8 @@ impl LabelInspection {
             out,
             "  ood threshold {:.4} (max calib disagreement), holdout ood rate {}",
             c.ood_threshold,
-            c.holdout_ood_rate.map_or("-".to_string(), |v| format!("{v:.3}"))
+            c.holdout_ood_rate
+                .map_or("-".to_string(), |v| format!("{v:.3}"))
         );
         for (name, s) in &self.sets {
             let _ = writeln!(
@@ -75,7 +82,13 @@ impl LabelInspection {
             );
         }
         let used = self.codes.codes.iter().filter(|c| c.count > 0).count();
-        let _ = writeln!(out, "  codes: {used} of {} used (inertia {:.3} on {} points)", self.codes.codes.len(), self.codes.inertia, self.codes.fitted_points);
+        let _ = writeln!(
+            out,
+            "  codes: {used} of {} used (inertia {:.3} on {} points)",
+            self.codes.codes.len(),
+            self.codes.inertia,
+            self.codes.fitted_points
+        );
         for code in &self.codes.codes {
             let mean: Vec<String> = code.mean_action.iter().map(|v| format!("{v:.4}")).collect();
             let _ = writeln!(
@@ -100,5 +113,9 @@ pub fn inspect_label(run_dir: &Path) -> std::io::Result<LabelInspection> {
         .and_then(|m| m.summary.get("sets").cloned())
         .and_then(|v| serde_json::from_value(v).ok())
         .unwrap_or_default();
-    Ok(LabelInspection { calibration, codes, sets })
+    Ok(LabelInspection {
+        calibration,
+        codes,
+        sets,
+    })
 }

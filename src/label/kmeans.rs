@@ -64,7 +64,10 @@ impl KMeans {
     /// Fits k-means on `points` (`n` rows of `dim` values, flat).
     pub fn fit(points: &[f64], dim: usize, s: KMeansSettings) -> Result<Self, KMeansError> {
         if dim == 0 || points.len() % dim != 0 {
-            return Err(KMeansError::Shape { len: points.len(), dim });
+            return Err(KMeansError::Shape {
+                len: points.len(),
+                dim,
+            });
         }
         let n = points.len() / dim;
         if n < s.k || s.k == 0 {
@@ -222,10 +225,23 @@ mod tests {
                 pts.push(c[1] + 0.1 * rng.normal());
             }
         }
-        let s = KMeansSettings { k: 3, restarts: 3, max_iterations: 100, seed: 7 };
+        let s = KMeansSettings {
+            k: 3,
+            restarts: 3,
+            max_iterations: 100,
+            seed: 7,
+        };
         let km = KMeans::fit(&pts, 2, s).unwrap();
-        assert!(km.inertia < 150.0 * 2.0 * 0.01 * 2.0, "inertia {}", km.inertia);
-        assert_eq!(km, KMeans::fit(&pts, 2, s).unwrap(), "seeded fit is deterministic");
+        assert!(
+            km.inertia < 150.0 * 2.0 * 0.01 * 2.0,
+            "inertia {}",
+            km.inertia
+        );
+        assert_eq!(
+            km,
+            KMeans::fit(&pts, 2, s).unwrap(),
+            "seeded fit is deterministic"
+        );
         let (c0, _) = km.nearest(&[0.0, 0.1]);
         let (c1, _) = km.nearest(&[10.0, -0.1]);
         assert_ne!(c0, c1);
@@ -233,7 +249,12 @@ mod tests {
 
     #[test]
     fn too_few_points() {
-        let s = KMeansSettings { k: 4, restarts: 1, max_iterations: 10, seed: 0 };
+        let s = KMeansSettings {
+            k: 4,
+            restarts: 1,
+            max_iterations: 10,
+            seed: 0,
+        };
         assert_eq!(
             KMeans::fit(&[0.0, 1.0, 2.0], 1, s),
             Err(KMeansError::TooFewPoints { k: 4, points: 3 })

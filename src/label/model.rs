@@ -50,28 +50,7 @@ pub trait TransitionModel: Send + Sync {
     fn infer(&self, pairs: &[(&[u8], &[u8])]) -> Result<TransitionBatch, ModelFailure>;
 }
 
-/// Which part of the labelled data a clip belongs to.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize, Hash)]
-#[serde(rename_all = "lowercase")]
-pub enum Split {
-    /// Training clips (every unlabelled clip too).
-    Train,
-    /// Calibration clips (conformal quantiles, confidence calibration, ood threshold).
-    Calib,
-    /// Held-out clips (coverage and reliability figures).
-    Holdout,
-}
-
-impl Split {
-    /// The name written to the shards' `split` column.
-    pub fn name(self) -> &'static str {
-        match self {
-            Split::Train => "train",
-            Split::Calib => "calib",
-            Split::Holdout => "holdout",
-        }
-    }
-}
+pub use crate::fit::Split;
 
 /// Split of each labelled clip by `(set, id)`; clips not listed are `train`.
 pub type Splits = BTreeMap<(String, String), Split>;

@@ -58,7 +58,9 @@ impl Isotonic {
             if pairs.len() - j < per_bin / 2 {
                 j = pairs.len();
             }
-            let b = pairs[i..j].iter().fold((0.0, 0.0, 0.0), |a, p| (a.0 + p.0, a.1 + p.1, a.2 + 1.0));
+            let b = pairs[i..j]
+                .iter()
+                .fold((0.0, 0.0, 0.0), |a, p| (a.0 + p.0, a.1 + p.1, a.2 + 1.0));
             bins.push(b);
             i = j;
         }
@@ -186,7 +188,11 @@ mod tests {
         let hits: Vec<bool> = (0..200).map(|i| (i % 50) < rates[i / 50]).collect();
         let iso = Isotonic::fit(&scores, &hits);
         assert_eq!(iso.y.len(), 3, "{iso:?}");
-        assert!((iso.y[0] - 0.2).abs() < 1e-12 && (iso.y[1] - 0.5).abs() < 1e-12 && (iso.y[2] - 0.8).abs() < 1e-12);
+        assert!(
+            (iso.y[0] - 0.2).abs() < 1e-12
+                && (iso.y[1] - 0.5).abs() < 1e-12
+                && (iso.y[2] - 0.8).abs() < 1e-12
+        );
         assert_eq!(iso.apply(0.0), 0.2);
         assert_eq!(iso.apply(1.0), 0.8);
         let mid = iso.apply(0.5);
@@ -203,7 +209,11 @@ mod tests {
     fn ece_of_a_worked_example() {
         // Two bins used: [0.2, 0.3) holds 0.25 x2 with 1 hit -> |0.5 - 0.25| = 0.25;
         // [0.9, 1] holds 0.95 x2 with 2 hits -> |1 - 0.95| = 0.05. ECE = 0.5*0.25 + 0.5*0.05.
-        let r = reliability(&[0.25, 0.25, 0.95, 1.0 - 0.05], &[true, false, true, true], 10);
+        let r = reliability(
+            &[0.25, 0.25, 0.95, 1.0 - 0.05],
+            &[true, false, true, true],
+            10,
+        );
         assert!((r.ece - 0.15).abs() < 1e-12, "{}", r.ece);
         assert_eq!(r.bins.len(), 10);
         assert_eq!(r.bins[2].count, 2);

@@ -18,8 +18,8 @@ use super::conformal::{self, ConformalQuantile};
 use super::kmeans::{KMeans, KMeansSettings};
 use super::model::{FitOutputs, FramePrep, Split, Standardisation, TransitionModel};
 use super::output::{
-    CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodeRow, CodesTable, DimCalibration,
-    LabelState, STATE_FILE, decoded_clips,
+    CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodeRow, CodesTable,
+    DimCalibration, LabelState, STATE_FILE, decoded_clips,
 };
 use super::reliability::{self, Isotonic, METHOD};
 use super::stats::{normal_quantile, prob_within};
@@ -114,7 +114,11 @@ impl Clip {
 }
 
 /// Runs the label stage with the given fit outputs and frame preparation.
-pub fn label_run(job: &LabelJob<'_>, fit: &FitOutputs, prep: &dyn FramePrep) -> Result<LabelSummary, LabelError> {
+pub fn label_run(
+    job: &LabelJob<'_>,
+    fit: &FitOutputs,
+    prep: &dyn FramePrep,
+) -> Result<LabelSummary, LabelError> {
     label_run_part(job, fit, prep, None)
 }
 
@@ -136,7 +140,9 @@ pub fn label_run_part(
         .into_iter()
         .map(|rec| {
             let split = if rec.labelled {
-                *fit.splits.get(&(rec.set.clone(), rec.id.clone())).unwrap_or(&Split::Train)
+                *fit.splits
+                    .get(&(rec.set.clone(), rec.id.clone()))
+                    .unwrap_or(&Split::Train)
             } else {
                 Split::Train
             };
@@ -295,11 +301,15 @@ fn infer_clip(
             first_transition: chunk[0],
             source,
         })?;
-        out.extend(raw_transitions(model, &batch, chunk.len()).map_err(|reason| LabelError::ModelOutput {
-            set: clip.rec.set.clone(),
-            id: clip.rec.id.clone(),
-            reason,
-        })?);
+        out.extend(
+            raw_transitions(model, &batch, chunk.len()).map_err(|reason| {
+                LabelError::ModelOutput {
+                    set: clip.rec.set.clone(),
+                    id: clip.rec.id.clone(),
+                    reason,
+                }
+            })?,
+        );
     }
     Ok(out)
 }
@@ -312,7 +322,10 @@ pub fn raw_transitions(
 ) -> Result<Vec<RawTransition>, String> {
     let st = model.standardisation();
     let (a, m, k) = (st.dims.len(), model.heads(), model.latent_dims());
-    if batch.latent.len() != b * k || batch.head_mean.len() != b * m * a || batch.head_logvar.len() != b * m * a {
+    if batch.latent.len() != b * k
+        || batch.head_mean.len() != b * m * a
+        || batch.head_logvar.len() != b * m * a
+    {
         return Err(format!(
             "batch of {b}: got {} latent, {} head mean and {} head log-variance values, expected {}, {} and {}",
             batch.latent.len(),
@@ -333,8 +346,15 @@ pub fn raw_transitions(
                 let heads = (0..m).map(|h| (i * m + h) * a + d);
                 let means: Vec<f64> = heads.clone().map(|j| batch.head_mean[j] as f64).collect();
                 let mean_s = means.iter().sum::<f64>() / m as f64;
-                let alea_s = heads.map(|j| (batch.head_logvar[j] as f64).exp()).sum::<f64>() / m as f64;
-                let epi_s = means.iter().map(|x| (x - mean_s) * (x - mean_s)).sum::<f64>() / m as f64;
+                let alea_s = heads
+                    .map(|j| (batch.head_logvar[j] as f64).exp())
+                    .sum::<f64>()
+                    / m as f64;
+                let epi_s = means
+                    .iter()
+                    .map(|x| (x - mean_s) * (x - mean_s))
+                    .sum::<f64>()
+                    / m as f64;
                 est[d] = mean_s * sd + mu;
                 std[d] = ((alea_s + epi_s) * sd * sd).sqrt();
                 dis += epi_s;
@@ -343,7 +363,10 @@ pub fn raw_transitions(
                 est,
                 std,
                 disagreement: (dis / a.max(1) as f64).sqrt(),
-                latent: batch.latent[i * k..(i + 1) * k].iter().map(|v| *v as f64).collect(),
+                latent: batch.latent[i * k..(i + 1) * k]
+                    .iter()
+                    .map(|v| *v as f64)
+                    .collect(),
             }
         })
         .collect())
@@ -374,8 +397,18 @@ fn finalise(raw: &RawTransition, cal: &CalibrationFigures, q: &[f64], iso: &Isot
     }
 }
 
-fn finish_clip(job: &LabelJob<'_>, clip: &Clip, state: &LabelState, raw: &[RawTransition]) -> ClipLabels {
-    let q: Vec<f64> = state.calibration.dims.iter().map(|d| d.quantile.q).collect();
+fn finish_clip(
+    job: &LabelJob<'_>,
+    clip: &Clip,
+    state: &LabelState,
+    raw: &[RawTransition],
+) -> ClipLabels {
+    let q: Vec<f64> = state
+        .calibration
+        .dims
+        .iter()
+        .map(|d| d.quantile.q)
+        .collect();
     let mut l = ClipLabels {
         id: clip.rec.id.clone(),
         set: clip.rec.set.clone(),
@@ -487,28 +520,58 @@ fn fit_state(
         confidence_method: METHOD.to_string(),
         holdout_reliability: Default::default(),
         holdout_reliability_raw: Default::default(),
-        ood_threshold: calib.iter().map(|(r, _)| r.disagreement).fold(0.0, f64::max),
+        ood_threshold: calib
+            .iter()
+            .map(|(r, _)| r.disagreement)
+            .fold(0.0, f64::max),
         holdout_ood_rate: None,
     };
     let q: Vec<f64> = quantiles.iter().map(|x| x.q).collect();
     let within = |f: &Final, act: &[f64]| (0..a).all(|d| (act[d] - f.est[d]).abs() <= tolerance[d]);
-    let covered = |f: &Final, act: &[f64], d: usize| (act[d] - f.est[d]).abs() <= z * f.std[d] * (1.0 + 1e-12);
+    let covered = |f: &Final, act: &[f64], d: usize| {
+        (act[d] - f.est[d]).abs() <= z * f.std[d] * (1.0 + 1e-12)
+    };
     // Confidence map on calib.
     let identity = Isotonic::default();
-    let calib_final: Vec<Final> = calib.iter().map(|(r, _)| finalise(r, &cal, &q, &identity)).collect();
-    let calib_hits: Vec<bool> = calib_final.iter().zip(&calib).map(|(f, (_, act))| within(f, act)).collect();
-    let iso = Isotonic::fit(&calib_final.iter().map(|f| f.raw_conf).collect::<Vec<_>>(), &calib_hits);
+    let calib_final: Vec<Final> = calib
+        .iter()
+        .map(|(r, _)| finalise(r, &cal, &q, &identity))
+        .collect();
+    let calib_hits: Vec<bool> = calib_final
+        .iter()
+        .zip(&calib)
+        .map(|(f, (_, act))| within(f, act))
+        .collect();
+    let iso = Isotonic::fit(
+        &calib_final.iter().map(|f| f.raw_conf).collect::<Vec<_>>(),
+        &calib_hits,
+    );
     for d in 0..a {
-        let c = calib_final.iter().zip(&calib).filter(|(f, (_, act))| covered(f, act, d)).count();
+        let c = calib_final
+            .iter()
+            .zip(&calib)
+            .filter(|(f, (_, act))| covered(f, act, d))
+            .count();
         cal.dims[d].calib_coverage = c as f64 / calib.len() as f64;
     }
     // Holdout figures.
     if !holdout.is_empty() {
         let n = holdout.len() as f64;
-        let fin: Vec<Final> = holdout.iter().map(|(r, _)| finalise(r, &cal, &q, &iso)).collect();
-        let hits: Vec<bool> = fin.iter().zip(&holdout).map(|(f, (_, act))| within(f, act)).collect();
+        let fin: Vec<Final> = holdout
+            .iter()
+            .map(|(r, _)| finalise(r, &cal, &q, &iso))
+            .collect();
+        let hits: Vec<bool> = fin
+            .iter()
+            .zip(&holdout)
+            .map(|(f, (_, act))| within(f, act))
+            .collect();
         for d in 0..a {
-            let c = fin.iter().zip(&holdout).filter(|(f, (_, act))| covered(f, act, d)).count();
+            let c = fin
+                .iter()
+                .zip(&holdout)
+                .filter(|(f, (_, act))| covered(f, act, d))
+                .count();
             cal.dims[d].holdout_coverage = Some(c as f64 / n);
             cal.dims[d].holdout_mean_std = Some(fin.iter().map(|f| f.std[d]).sum::<f64>() / n);
         }

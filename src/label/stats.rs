@@ -132,7 +132,11 @@ mod tests {
     // `statistics.NormalDist().inv_cdf` (Wichura's AS241), printed with repr().
     #[test]
     fn erf_matches_python_math() {
-        for (x, want) in [(0.5, 0.5204998778130465), (2.5, 0.999593047982555), (4.0, 0.9999999845827421)] {
+        for (x, want) in [
+            (0.5, 0.5204998778130465),
+            (2.5, 0.999593047982555),
+            (4.0, 0.9999999845827421),
+        ] {
             assert!((erf(x) - want).abs() < 1e-14, "erf({x}) = {}", erf(x));
             assert!((erf(-x) + want).abs() < 1e-14);
         }
@@ -153,7 +157,10 @@ mod tests {
             (0.999999, 4.753424308817089),
         ] {
             let got = normal_quantile(p);
-            assert!((got - want).abs() < 1e-9 * want.abs().max(1.0), "p {p}: {got} vs {want}");
+            assert!(
+                (got - want).abs() < 1e-9 * want.abs().max(1.0),
+                "p {p}: {got} vs {want}"
+            );
         }
     }
 }

@@ -23,7 +23,12 @@ pub struct SeededInit {
 impl SeededInit {
     /// A `VarBuilder` whose new variables go into `map`, seeded by `seed`.
     /// Names already in `map` are returned as they are (after a shape check).
-    pub fn var_builder(map: &VarMap, seed: u64, dtype: DType, device: &Device) -> VarBuilder<'static> {
+    pub fn var_builder(
+        map: &VarMap,
+        seed: u64,
+        dtype: DType,
+        device: &Device,
+    ) -> VarBuilder<'static> {
         VarBuilder::from_backend(
             Box::new(SeededInit {
                 map: map.clone(),
@@ -94,6 +99,10 @@ impl candle_nn::var_builder::SimpleBackend for SeededInit {
     }
 
     fn contains_tensor(&self, name: &str) -> bool {
-        self.map.data().lock().expect("var map lock").contains_key(name)
+        self.map
+            .data()
+            .lock()
+            .expect("var map lock")
+            .contains_key(name)
     }
 }

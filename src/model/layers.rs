@@ -99,7 +99,15 @@ mod tests {
         let s = space_to_depth(&x).unwrap();
         assert_eq!(s.dims(), &[2, 2, 3, 12]);
         // Output pixel (0,0) holds input pixels (0,0), (0,1), (1,0), (1,1).
-        let px: Vec<f32> = s.get(0).unwrap().get(0).unwrap().get(0).unwrap().to_vec1().unwrap();
+        let px: Vec<f32> = s
+            .get(0)
+            .unwrap()
+            .get(0)
+            .unwrap()
+            .get(0)
+            .unwrap()
+            .to_vec1()
+            .unwrap();
         let at = |r: usize, c: usize| -> Vec<f32> {
             let base = ((r * 6 + c) * 3) as f32;
             vec![base, base + 1., base + 2.]
@@ -115,6 +123,9 @@ mod tests {
     fn avg_pool_matches_hand_computation() {
         let x = Tensor::new(&[[[[1f32], [2.]], [[3.], [6.]]]], &Device::Cpu).unwrap();
         let p = avg_pool2(&x).unwrap();
-        assert_eq!(p.flatten_all().unwrap().to_vec1::<f32>().unwrap(), vec![3.0]);
+        assert_eq!(
+            p.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+            vec![3.0]
+        );
     }
 }

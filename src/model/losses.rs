@@ -127,7 +127,11 @@ pub fn median_bandwidth(x: &Tensor, y: &Tensor) -> Result<f64> {
     let mid = (upper.len() - 1) / 2;
     let (_, med, _) = upper.select_nth_unstable_by(mid, |a, b| a.total_cmp(b));
     let sigma = med.sqrt();
-    Ok(if sigma > 0.0 && sigma.is_finite() { sigma } else { 1.0 })
+    Ok(if sigma > 0.0 && sigma.is_finite() {
+        sigma
+    } else {
+        1.0
+    })
 }
 
 /// Unbiased MMD^2 with a Gaussian kernel (Gretton et al. 2012, JMLR, eq. 3).

@@ -26,8 +26,8 @@ pub mod rng;
 
 pub use init::SeededInit;
 pub use losses::{Bandwidth, SharedVariance};
-pub use optim::{AdamW, AdamWParams};
 pub use net::{Batch, Inference, LossOptions, LossParts, Net, frames_to_tensor};
+pub use optim::{AdamW, AdamWParams};
 pub use rng::Rng;
 
 use serde::{Deserialize, Serialize};
@@ -106,7 +106,9 @@ impl Default for Config {
 #[derive(Debug, thiserror::Error)]
 pub enum ModelError {
     /// The frame size is not divisible by the pyramid's total downsampling.
-    #[error("frame size {width}x{height} is not divisible by {factor}, the network's downsampling factor")]
+    #[error(
+        "frame size {width}x{height} is not divisible by {factor}, the network's downsampling factor"
+    )]
     FrameSize {
         /// Width.
         width: usize,
@@ -167,7 +169,11 @@ impl Config {
             return Err(ModelError::Zero { name: "widths" });
         }
         let factor = 1usize << (self.stem + self.levels - 1).min(24);
-        if self.width == 0 || self.height == 0 || self.width % factor != 0 || self.height % factor != 0 {
+        if self.width == 0
+            || self.height == 0
+            || self.width % factor != 0
+            || self.height % factor != 0
+        {
             return Err(ModelError::FrameSize {
                 width: self.width,
                 height: self.height,
@@ -191,7 +197,10 @@ impl Config {
 
     /// Size `(H / 2^r, W / 2^r)` of the reconstructed frame.
     pub fn recon_size(&self) -> (usize, usize) {
-        (self.height >> self.recon_level, self.width >> self.recon_level)
+        (
+            self.height >> self.recon_level,
+            self.width >> self.recon_level,
+        )
     }
 }
 

@@ -91,8 +91,16 @@ impl Pyramid {
             c = 4 * out;
         }
         let (hl, wl) = cfg.deepest_size();
-        let fc = Dense::new(hl * wl * cfg.widths[cfg.levels - 1], cfg.hidden, vb.pp("fc"))?;
-        Ok(Self { levels, fc, stem: cfg.stem })
+        let fc = Dense::new(
+            hl * wl * cfg.widths[cfg.levels - 1],
+            cfg.hidden,
+            vb.pp("fc"),
+        )?;
+        Ok(Self {
+            levels,
+            fc,
+            stem: cfg.stem,
+        })
     }
 
     /// Returns the feature maps `f_1..f_L` and the flat features `[B, hidden]`.
@@ -279,7 +287,11 @@ impl Net {
     fn build_decoder(cfg: &Config, vb: VarBuilder) -> Result<Decoder> {
         let l = cfg.levels;
         let (hl, wl) = cfg.deepest_size();
-        let top = Dense::new(cfg.hidden + cfg.latent, hl * wl * cfg.widths[l - 1], vb.pp("top"))?;
+        let top = Dense::new(
+            cfg.hidden + cfg.latent,
+            hl * wl * cfg.widths[l - 1],
+            vb.pp("top"),
+        )?;
         let c = |j: usize| cfg.widths[j - 1];
         let (mut merge, mut from_z, mut up) = (Vec::new(), Vec::new(), Vec::new());
         for j in (1..=l).rev() {
@@ -411,12 +423,16 @@ impl Net {
         };
         let n_u = b - n_l;
         let (align, sigma) = if opts.align_weight != 0.0 && n_l >= 2 && n_u >= 2 {
-            mmd2_unbiased(&mu.narrow(0, 0, n_l)?, &mu.narrow(0, n_l, n_u)?, opts.bandwidth)?
+            mmd2_unbiased(
+                &mu.narrow(0, 0, n_l)?,
+                &mu.narrow(0, n_l, n_u)?,
+                opts.bandwidth,
+            )?
         } else {
             (zero()?, f64::NAN)
         };
-        let total = (((&recon + &kl)? + (&action * opts.action_weight)?)?
-            + (&align * opts.align_weight)?)?;
+        let total =
+            (((&recon + &kl)? + (&action * opts.action_weight)?)? + (&align * opts.align_weight)?)?;
         Ok(LossParts {
             total,
             recon,

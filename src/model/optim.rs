@@ -118,7 +118,11 @@ impl AdamW {
             };
             let dtype = var.dtype();
             let g: Vec<f32> = g.flatten_all()?.to_dtype(DType::F32)?.to_vec1()?;
-            let mut w: Vec<f32> = var.as_tensor().flatten_all()?.to_dtype(DType::F32)?.to_vec1()?;
+            let mut w: Vec<f32> = var
+                .as_tensor()
+                .flatten_all()?
+                .to_dtype(DType::F32)?
+                .to_vec1()?;
             for i in 0..w.len() {
                 let gi = g[i];
                 let m = b1 * mom.m[i] + (1.0 - b1) * gi;
@@ -181,7 +185,10 @@ mod tests {
         let dev = Device::Cpu;
         let init = Tensor::new(&[1.0f32, -2.0, 0.5], &dev).unwrap();
         let target = Tensor::new(&[0.3f32, 0.1, -0.4], &dev).unwrap();
-        let (a, b) = (Var::from_tensor(&init).unwrap(), Var::from_tensor(&init).unwrap());
+        let (a, b) = (
+            Var::from_tensor(&init).unwrap(),
+            Var::from_tensor(&init).unwrap(),
+        );
         let params = AdamWParams {
             lr: 0.05,
             weight_decay: 0.01,
@@ -200,9 +207,19 @@ mod tests {
         )
         .unwrap();
         for _ in 0..50 {
-            let la = (a.as_tensor() - &target).unwrap().sqr().unwrap().sum_all().unwrap();
+            let la = (a.as_tensor() - &target)
+                .unwrap()
+                .sqr()
+                .unwrap()
+                .sum_all()
+                .unwrap();
             ours.backward_step(&la).unwrap();
-            let lb = (b.as_tensor() - &target).unwrap().sqr().unwrap().sum_all().unwrap();
+            let lb = (b.as_tensor() - &target)
+                .unwrap()
+                .sqr()
+                .unwrap()
+                .sum_all()
+                .unwrap();
             theirs.backward_step(&lb).unwrap();
         }
         let va: Vec<f32> = a.as_tensor().to_vec1().unwrap();

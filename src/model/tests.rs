@@ -71,15 +71,25 @@ fn kl_diag_gaussians_matches_monte_carlo_and_scipy_quadrature() {
     let m2 = [0.0, 0.5, 1.5, -0.7];
     let l2 = [0.2, -0.3, 0.0, 1.0];
     let kl = scalar(
-        &kl_diag_gaussians(&t64(&m1, &[4]), &t64(&l1, &[4]), &t64(&m2, &[4]), &t64(&l2, &[4]))
-            .unwrap(),
+        &kl_diag_gaussians(
+            &t64(&m1, &[4]),
+            &t64(&l1, &[4]),
+            &t64(&m2, &[4]),
+            &t64(&l2, &[4]),
+        )
+        .unwrap(),
     );
     // Against the standard normal, the general form and the special case agree.
     let z = [0.0; 4];
     let a = scalar(&kl_std_normal(&t64(&m1, &[4]), &t64(&l1, &[4])).unwrap());
     let b = scalar(
-        &kl_diag_gaussians(&t64(&m1, &[4]), &t64(&l1, &[4]), &t64(&z, &[4]), &t64(&z, &[4]))
-            .unwrap(),
+        &kl_diag_gaussians(
+            &t64(&m1, &[4]),
+            &t64(&l1, &[4]),
+            &t64(&z, &[4]),
+            &t64(&z, &[4]),
+        )
+        .unwrap(),
     );
     assert!((a - b).abs() < 1e-12, "{a} vs {b}");
 
@@ -101,7 +111,10 @@ fn kl_diag_gaussians_matches_monte_carlo_and_scipy_quadrature() {
     }
     let mean = sum / n as f64;
     let se = ((sum2 / n as f64 - mean * mean) / n as f64).sqrt();
-    assert!((mean - kl).abs() < 5.0 * se, "closed {kl}, MC {mean} +- {se}");
+    assert!(
+        (mean - kl).abs() < 5.0 * se,
+        "closed {kl}, MC {mean} +- {se}"
+    );
 
     // SciPy: numerical integration of q (log q - log p) per dimension with
     // scipy.integrate.quad and scipy.stats.norm.logpdf.
@@ -118,10 +131,17 @@ for j in range(4):
     tot += val
 print(repr(tot))
 "#;
-    let input: Vec<String> = [m1, l1, m2, l2].concat().iter().map(|v| v.to_string()).collect();
+    let input: Vec<String> = [m1, l1, m2, l2]
+        .concat()
+        .iter()
+        .map(|v| v.to_string())
+        .collect();
     if let Some(out) = python(script, &input.join(" ")) {
         let reference = floats(&out)[0];
-        assert!((kl - reference).abs() < 1e-8, "closed {kl}, scipy {reference}");
+        assert!(
+            (kl - reference).abs() < 1e-8,
+            "closed {kl}, scipy {reference}"
+        );
     }
 }
 
@@ -144,7 +164,10 @@ print(" ".join(repr(float(t)) for t in -stats.norm.logpdf(v[0], v[1], np.exp(0.5
     let input: Vec<String> = [x, mu, lv].concat().iter().map(|v| v.to_string()).collect();
     if let Some(out) = python(script, &input.join(" ")) {
         for (a, b) in ours.iter().zip(floats(&out)) {
-            assert!((a - b).abs() < 1e-10 * b.abs().max(1.0), "ours {a}, scipy {b}");
+            assert!(
+                (a - b).abs() < 1e-10 * b.abs().max(1.0),
+                "ours {a}, scipy {b}"
+            );
         }
     }
 }
@@ -238,13 +261,23 @@ fn learned_shared_variance_converges_to_reconstruction_mse() {
     let (mu, lv) = net.posterior().forward(&batch.x_t, &batch.x_t1).unwrap();
     let zz = (&mu + (&lv * 0.5).unwrap().exp().unwrap().mul(&batch.eps).unwrap()).unwrap();
     let pred = net.decode(&batch.x_t, &zz).unwrap();
-    let mse = scalar(&(pred - net.target(&batch.x_t1).unwrap()).unwrap().sqr().unwrap().mean_all().unwrap());
+    let mse = scalar(
+        &(pred - net.target(&batch.x_t1).unwrap())
+            .unwrap()
+            .sqr()
+            .unwrap()
+            .mean_all()
+            .unwrap(),
+    );
     let learned = scalar(&parts.variance);
     assert!(
         (learned - mse).abs() < 1e-6 * mse.max(1e-12) + 1e-9,
         "learned {learned}, mse {mse}"
     );
-    assert!((learned.ln() - super::INITIAL_LOG_VARIANCE).abs() > 0.1, "variance did not move");
+    assert!(
+        (learned.ln() - super::INITIAL_LOG_VARIANCE).abs() > 0.1,
+        "variance did not move"
+    );
 }
 
 /// NumPy reference of the unbiased MMD^2 (Gretton et al. 2012, JMLR, eq. 3)
@@ -276,7 +309,11 @@ fn unbiased_mmd2_matches_numpy_and_vanishes_for_one_distribution() {
     let mmd = scalar(&mmd);
     let input = format!(
         "{m} {n} {k} {}",
-        xs.iter().chain(&ys).map(|v| v.to_string()).collect::<Vec<_>>().join(" ")
+        xs.iter()
+            .chain(&ys)
+            .map(|v| v.to_string())
+            .collect::<Vec<_>>()
+            .join(" ")
     );
     if let Some(out) = python(NUMPY_MMD, &input) {
         let r = floats(&out);
@@ -296,8 +333,12 @@ fn unbiased_mmd2_matches_numpy_and_vanishes_for_one_distribution() {
             t64(&v, &[rows, 2])
         };
         let (a, b, c) = (draw(0.0, 20), draw(0.0, 20), draw(1.0, 20));
-        same.push(scalar(&mmd2_unbiased(&a, &b, Bandwidth::Fixed(1.0)).unwrap().0));
-        shifted.push(scalar(&mmd2_unbiased(&a, &c, Bandwidth::Fixed(1.0)).unwrap().0));
+        same.push(scalar(
+            &mmd2_unbiased(&a, &b, Bandwidth::Fixed(1.0)).unwrap().0,
+        ));
+        shifted.push(scalar(
+            &mmd2_unbiased(&a, &c, Bandwidth::Fixed(1.0)).unwrap().0,
+        ));
     }
     let stats = |v: &[f64]| {
         let mean = v.iter().sum::<f64>() / v.len() as f64;
@@ -305,7 +346,10 @@ fn unbiased_mmd2_matches_numpy_and_vanishes_for_one_distribution() {
         (mean, (var / v.len() as f64).sqrt())
     };
     let (ms, ses) = stats(&same);
-    assert!(ms.abs() < 4.0 * ses, "same-distribution MMD^2 mean {ms} +- {ses}");
+    assert!(
+        ms.abs() < 4.0 * ses,
+        "same-distribution MMD^2 mean {ms} +- {ses}"
+    );
     let (mx, sex) = stats(&shifted);
     assert!(mx > 10.0 * sex, "shifted MMD^2 mean {mx} +- {sex}");
 }
@@ -331,7 +375,8 @@ fn loss_gradient_matches_finite_differences() {
     vars.sort_by(|a, b| a.0.cmp(&b.0));
     for (_, v) in &vars {
         let vals: Vec<f64> = (0..v.elem_count()).map(|_| 0.4 * rng.normal()).collect();
-        v.set(&Tensor::from_vec(vals, v.shape(), &Device::Cpu).unwrap()).unwrap();
+        v.set(&Tensor::from_vec(vals, v.shape(), &Device::Cpu).unwrap())
+            .unwrap();
     }
     let batch = tiny_batch(&cfg, 6, 3, DType::F64, 8);
     let opts = LossOptions {
@@ -357,7 +402,8 @@ fn loss_gradient_matches_finite_differences() {
             let set = |delta: f64| {
                 let mut v = base.clone();
                 v[idx] += delta;
-                var.set(&Tensor::from_vec(v, var.shape(), &Device::Cpu).unwrap()).unwrap();
+                var.set(&Tensor::from_vec(v, var.shape(), &Device::Cpu).unwrap())
+                    .unwrap();
             };
             set(h);
             let up = loss(&net);
@@ -366,7 +412,11 @@ fn loss_gradient_matches_finite_differences() {
             set(0.0);
             let fd = (up - down) / (2.0 * h);
             let tol = 1e-5 * fd.abs().max(g[idx].abs()).max(1.0);
-            assert!((fd - g[idx]).abs() < tol, "{name}[{idx}]: backward {} vs fd {fd}", g[idx]);
+            assert!(
+                (fd - g[idx]).abs() < tol,
+                "{name}[{idx}]: backward {} vs fd {fd}",
+                g[idx]
+            );
             checked += 1;
         }
     }
@@ -381,7 +431,10 @@ fn network_shapes_and_parameter_names() {
     let net = Net::new(&cfg, vb).unwrap();
     let names: Vec<String> = map.data().lock().unwrap().keys().cloned().collect();
     for prefix in ["encoder.", "posterior.", "decoder.", "heads.0.", "heads.4."] {
-        assert!(names.iter().any(|n| n.starts_with(prefix)), "{prefix} in {names:?}");
+        assert!(
+            names.iter().any(|n| n.starts_with(prefix)),
+            "{prefix} in {names:?}"
+        );
     }
     let batch = tiny_batch(&cfg, 4, 2, DType::F32, 2);
     let parts = net.loss(&batch, &LossOptions::default()).unwrap();
@@ -395,9 +448,17 @@ fn network_shapes_and_parameter_names() {
     assert_eq!(pred.dims(), &[4, 32, 32, 3]);
     // Same seed, same initial parameters; other seed, others.
     let again = VarMap::new();
-    let _ = Net::new(&cfg, SeededInit::var_builder(&again, 1, DType::F32, &Device::Cpu)).unwrap();
+    let _ = Net::new(
+        &cfg,
+        SeededInit::var_builder(&again, 1, DType::F32, &Device::Cpu),
+    )
+    .unwrap();
     let other = VarMap::new();
-    let _ = Net::new(&cfg, SeededInit::var_builder(&other, 2, DType::F32, &Device::Cpu)).unwrap();
+    let _ = Net::new(
+        &cfg,
+        SeededInit::var_builder(&other, 2, DType::F32, &Device::Cpu),
+    )
+    .unwrap();
     let get = |m: &VarMap| -> Vec<f32> {
         m.data().lock().unwrap()["posterior.mu.weight"]
             .as_tensor()
@@ -409,10 +470,16 @@ fn network_shapes_and_parameter_names() {
     assert_eq!(get(&map), get(&again));
     assert_ne!(get(&map), get(&other));
     // A frame size the pyramid cannot halve is refused.
-    let bad = Config { width: 60, ..Config::default() };
-    let err = Net::new(&bad, SeededInit::var_builder(&VarMap::new(), 1, DType::F32, &Device::Cpu))
-        .err()
-        .unwrap()
-        .to_string();
+    let bad = Config {
+        width: 60,
+        ..Config::default()
+    };
+    let err = Net::new(
+        &bad,
+        SeededInit::var_builder(&VarMap::new(), 1, DType::F32, &Device::Cpu),
+    )
+    .err()
+    .unwrap()
+    .to_string();
     assert!(err.contains("not divisible by 16"), "{err}");
 }

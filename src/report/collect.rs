@@ -8,7 +8,9 @@ use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use super::figures::*;
-use crate::label::output::{CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodesTable};
+use crate::label::output::{
+    CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodesTable,
+};
 use crate::runner::Stage;
 use crate::store::{ClipRecord, StageManifest};
 
@@ -42,15 +44,22 @@ pub struct Gathered {
 pub fn manifest(run: &Path, stage: Stage) -> Result<StageManifest, String> {
     match StageManifest::read(run, stage.name()) {
         Ok(Some(m)) => Ok(m),
-        Ok(None) => Err(format!("the {stage} stage has not run (no {stage}/manifest.json)")),
-        Err(e) => Err(format!("{}: {e}", StageManifest::path(run, stage.name()).display())),
+        Ok(None) => Err(format!(
+            "the {stage} stage has not run (no {stage}/manifest.json)"
+        )),
+        Err(e) => Err(format!(
+            "{}: {e}",
+            StageManifest::path(run, stage.name()).display()
+        )),
     }
 }
 
 /// Gathers every figure of `run`; `verify` re-hashes the shards.
 pub fn gather(run: &Path, verify: bool) -> Gathered {
-    let manifests: Vec<(Stage, Result<StageManifest, String>)> =
-        Stage::ALL.into_iter().map(|s| (s, manifest(run, s))).collect();
+    let manifests: Vec<(Stage, Result<StageManifest, String>)> = Stage::ALL
+        .into_iter()
+        .map(|s| (s, manifest(run, s)))
+        .collect();
     let stages = manifests
         .iter()
         .map(|(s, m)| match m {
@@ -74,7 +83,13 @@ pub fn gather(run: &Path, verify: bool) -> Gathered {
             },
         })
         .collect();
-    let get = |s: Stage| manifests.iter().find(|(x, _)| *x == s).map(|(_, m)| m.clone()).unwrap();
+    let get = |s: Stage| {
+        manifests
+            .iter()
+            .find(|(x, _)| *x == s)
+            .map(|(_, m)| m.clone())
+            .unwrap()
+    };
     let (records, unreadable) = read_records(run);
     let recorded = recorded_actions(run, &records);
     let (label, labels) = label_section(run, &get(Stage::Label), &records);
@@ -99,7 +114,10 @@ pub fn gather(run: &Path, verify: bool) -> Gathered {
 }
 
 fn spec_ref(manifests: &[(Stage, Result<StageManifest, String>)]) -> SpecRef {
-    let mut r = SpecRef { path: None, sha256: None };
+    let mut r = SpecRef {
+        path: None,
+        sha256: None,
+    };
     for m in manifests.iter().filter_map(|(_, m)| m.as_ref().ok()) {
         for key in ["spec", "spec-sha256", "spec_sha256"] {
             if r.sha256.is_none() {
@@ -136,7 +154,9 @@ pub fn read_records(run: &Path) -> (Vec<ClipRecord>, Vec<String>) {
 }
 
 fn walk(dir: &Path, suffix: &str, out: &mut Vec<PathBuf>) {
-    let Ok(rd) = std::fs::read_dir(dir) else { return };
+    let Ok(rd) = std::fs::read_dir(dir) else {
+        return;
+    };
     let mut entries: Vec<PathBuf> = rd.filter_map(|e| e.ok()).map(|e| e.path()).collect();
     entries.sort();
     for path in entries {
@@ -148,7 +168,11 @@ fn walk(dir: &Path, suffix: &str, out: &mut Vec<PathBuf>) {
     }
 }
 
-fn decode_section(m: &Result<StageManifest, String>, records: &[ClipRecord], unreadable: Vec<String>) -> Section<DecodeFigures> {
+fn decode_section(
+    m: &Result<StageManifest, String>,
+    records: &[ClipRecord],
+    unreadable: Vec<String>,
+) -> Section<DecodeFigures> {
     let m = match m {
         Ok(m) => m,
         Err(note) if records.is_empty() => return Section::Missing(note.clone()),
@@ -233,13 +257,18 @@ fn align_section(m: &Result<StageManifest, String>) -> Section<AlignFigures> {
         Err(note) => Section::Missing(note.clone()),
         Ok(m) => match serde_json::from_value(m.summary.clone()) {
             Ok(figures) => Section::Ok(figures),
-            Err(e) => Section::Missing(format!("align/manifest.json: summary not understood by this build: {e}")),
+            Err(e) => Section::Missing(format!(
+                "align/manifest.json: summary not understood by this build: {e}"
+            )),
         },
     }
 }
 
 /// Recorded actions on the decode grid (re-mapped by align when it estimated offsets).
-fn recorded_actions(run: &Path, records: &[ClipRecord]) -> BTreeMap<(String, String), Vec<Vec<f32>>> {
+fn recorded_actions(
+    run: &Path,
+    records: &[ClipRecord],
+) -> BTreeMap<(String, String), Vec<Vec<f32>>> {
     let mut out = BTreeMap::new();
     let aligned = crate::align::AlignedRun::open(run).ok();
     for r in records.iter().filter(|r| r.labelled) {
@@ -285,7 +314,11 @@ fn fit_section(
     let eval_truth_used = [metrics.as_ref(), Some(&m.summary)]
         .into_iter()
         .flatten()
-        .find_map(|v| v.get("eval_truth_used").or_else(|| v.get("truth_used")).and_then(|b| b.as_bool()));
+        .find_map(|v| {
+            v.get("eval_truth_used")
+                .or_else(|| v.get("truth_used"))
+                .and_then(|b| b.as_bool())
+        });
     let dims = records
         .iter()
         .find(|r| r.labelled && !r.action_dims.is_empty())
@@ -309,8 +342,13 @@ pub fn holdout_pairs(
     recorded: &BTreeMap<(String, String), Vec<Vec<f32>>>,
 ) -> Vec<Vec<(f64, f64)>> {
     let mut out = vec![Vec::new(); ndims];
-    for (key, l) in labels.iter().filter(|(_, l)| l.split == crate::label::model::Split::Holdout) {
-        let Some(rec) = recorded.get(key) else { continue };
+    for (key, l) in labels
+        .iter()
+        .filter(|(_, l)| l.split == crate::label::model::Split::Holdout)
+    {
+        let Some(rec) = recorded.get(key) else {
+            continue;
+        };
         for (est, act) in l.action_est.iter().zip(rec) {
             for d in 0..ndims.min(est.len()).min(act.len()) {
                 out[d].push((act[d] as f64, est[d] as f64));
@@ -353,7 +391,10 @@ fn label_section(
     run: &Path,
     m: &Result<StageManifest, String>,
     records: &[ClipRecord],
-) -> (Section<LabelFigures>, BTreeMap<(String, String), ClipLabels>) {
+) -> (
+    Section<LabelFigures>,
+    BTreeMap<(String, String), ClipLabels>,
+) {
     let mut labels = BTreeMap::new();
     if let Err(note) = m {
         return (Section::Missing(note.clone()), labels);
@@ -361,7 +402,12 @@ fn label_section(
     let dir = run.join("label");
     let calib: CalibrationFigures = match crate::store::read_json(&dir.join(CALIBRATION_FILE)) {
         Ok(c) => c,
-        Err(e) => return (Section::Missing(format!("{}: {e}", dir.join(CALIBRATION_FILE).display())), labels),
+        Err(e) => {
+            return (
+                Section::Missing(format!("{}: {e}", dir.join(CALIBRATION_FILE).display())),
+                labels,
+            );
+        }
     };
     let codes: Option<CodesTable> = crate::store::read_json(&dir.join(CODES_FILE)).ok();
     let mut unreadable = Vec::new();
@@ -370,7 +416,10 @@ fn label_section(
             Ok(l) => {
                 labels.insert((r.set.clone(), r.id.clone()), l);
             }
-            Err(e) => unreadable.push(format!("{}: {e}", ClipLabels::path(&dir, &r.set, &r.id).display())),
+            Err(e) => unreadable.push(format!(
+                "{}: {e}",
+                ClipLabels::path(&dir, &r.set, &r.id).display()
+            )),
         }
     }
     let mut sets: BTreeMap<String, (LabelSet, f64, u64)> = BTreeMap::new();
@@ -420,7 +469,11 @@ fn label_section(
             s
         })
         .collect();
-    ranked.sort_by(|a, b| a.mean_confidence.total_cmp(&b.mean_confidence).then((&a.set, &a.id).cmp(&(&b.set, &b.id))));
+    ranked.sort_by(|a, b| {
+        a.mean_confidence
+            .total_cmp(&b.mean_confidence)
+            .then((&a.set, &a.id).cmp(&(&b.set, &b.id)))
+    });
     ranked.truncate(LOWEST_CLIPS);
     let codes_use: Vec<CodeUse> = codes
         .as_ref()
@@ -441,7 +494,12 @@ fn label_section(
     let code_examples = top
         .iter()
         .take(TOP_CODES)
-        .map(|c| (c.code, examples(&labels, |l, k| l.code[k] == c.code, CODE_EXAMPLES)))
+        .map(|c| {
+            (
+                c.code,
+                examples(&labels, |l, k| l.code[k] == c.code, CODE_EXAMPLES),
+            )
+        })
         .collect();
     let contact_sheet = examples(&labels, |l, _| !l.labelled, CONTACT_TILES);
     let dims = calib.standardisation.dims.clone();
@@ -482,7 +540,12 @@ fn examples(
     let mut per_clip: Vec<(&ClipLabels, Vec<usize>)> = labels
         .values()
         .map(|l| {
-            let len = l.confidence.len().min(l.code.len()).min(l.action_est.len()).min(l.ood.len());
+            let len = l
+                .confidence
+                .len()
+                .min(l.code.len())
+                .min(l.action_est.len())
+                .min(l.ood.len());
             let mid = len / 2;
             let mut ks: Vec<usize> = (0..len).filter(|&k| pick(l, k)).collect();
             ks.sort_by_key(|&k| (k as i64 - mid as i64).abs());
@@ -516,10 +579,18 @@ fn examples(
 /// An `f32` as the `f64` of its shortest decimal form (`0.91`, not
 /// `0.9099999666213989`), so JSON shows and re-reads it exactly.
 fn short(v: f32) -> f64 {
-    if v.is_finite() { v.to_string().parse().unwrap_or(v as f64) } else { v as f64 }
+    if v.is_finite() {
+        v.to_string().parse().unwrap_or(v as f64)
+    } else {
+        v as f64
+    }
 }
 
-fn shard_section(run: &Path, m: &Result<StageManifest, String>, verify: bool) -> Section<ShardFigures> {
+fn shard_section(
+    run: &Path,
+    m: &Result<StageManifest, String>,
+    verify: bool,
+) -> Section<ShardFigures> {
     let m = match m {
         Ok(m) => m,
         Err(note) => return Section::Missing(note.clone()),

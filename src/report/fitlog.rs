@@ -22,10 +22,17 @@ impl TrainLog {
     /// Parses CSV text (header row, comma-separated numbers).
     pub fn parse(text: &str) -> Option<Self> {
         let mut lines = text.lines().filter(|l| !l.trim().is_empty());
-        let columns: Vec<String> = lines.next()?.split(',').map(|c| c.trim().to_string()).collect();
+        let columns: Vec<String> = lines
+            .next()?
+            .split(',')
+            .map(|c| c.trim().to_string())
+            .collect();
         let rows = lines
             .map(|l| {
-                let mut r: Vec<f64> = l.split(',').map(|c| c.trim().parse().unwrap_or(f64::NAN)).collect();
+                let mut r: Vec<f64> = l
+                    .split(',')
+                    .map(|c| c.trim().parse().unwrap_or(f64::NAN))
+                    .collect();
                 r.resize(columns.len(), f64::NAN);
                 r
             })
@@ -46,7 +53,10 @@ impl TrainLog {
                 return (name.to_string(), c);
             }
         }
-        ("row".to_string(), (0..self.rows.len()).map(|i| i as f64).collect())
+        (
+            "row".to_string(),
+            (0..self.rows.len()).map(|i| i as f64).collect(),
+        )
     }
 }
 
@@ -98,17 +108,23 @@ pub fn comparison_rows(v: &serde_json::Value) -> Vec<ComparisonRow> {
     };
     let numbers = |o: &serde_json::Value| -> BTreeMap<String, f64> {
         o.as_object()
-            .map(|m| m.iter().filter_map(|(k, v)| v.as_f64().map(|x| (k.clone(), x))).collect())
+            .map(|m| {
+                m.iter()
+                    .filter_map(|(k, v)| v.as_f64().map(|x| (k.clone(), x)))
+                    .collect()
+            })
             .unwrap_or_default()
     };
     let text = |o: &serde_json::Value, keys: &[&str]| -> Option<String> {
-        keys.iter().find_map(|k| o.get(*k).and_then(|v| v.as_str()).map(String::from))
+        keys.iter()
+            .find_map(|k| o.get(*k).and_then(|v| v.as_str()).map(String::from))
     };
     match table {
         serde_json::Value::Array(list) => {
             for row in list {
                 let model = text(row, &["model", "name"]).unwrap_or_else(|| "?".into());
-                let eval = text(row, &["eval", "set", "on", "data", "split"]).unwrap_or_else(|| "holdout".into());
+                let eval = text(row, &["eval", "set", "on", "data", "split"])
+                    .unwrap_or_else(|| "holdout".into());
                 match row.get("dims").or_else(|| row.get("per_dim")) {
                     Some(serde_json::Value::Object(dims)) => {
                         for (d, figs) in dims {
@@ -164,7 +180,9 @@ mod tests {
         assert_eq!(rows.len(), 1);
         assert_eq!(rows[0].dims["dx"]["r2"], 0.9);
         assert_eq!(rows[0].dims["dy"]["r2"], 0.8);
-        let nested = comparison_rows(&serde_json::json!({"labelled-only": {"holdout": {"dx": {"r2": 0.5}}}}));
+        let nested = comparison_rows(
+            &serde_json::json!({"labelled-only": {"holdout": {"dx": {"r2": 0.5}}}}),
+        );
         assert_eq!(nested[0].model, "labelled-only");
         assert_eq!(nested[0].dims["dx"]["r2"], 0.5);
     }

@@ -56,8 +56,13 @@ pub fn page(g: &Gathered) -> String {
     super::html_stages::unlabelled(&mut h, g);
     shard(&mut h, f);
     // The figures this page was drawn from, as data (not script): `inspect --json` prints the same.
-    let json = serde_json::to_string(f).unwrap_or_default().replace("</", "<\\/");
-    let _ = write!(h, "<script type=\"application/json\" id=\"actuary-figures\">{json}</script>");
+    let json = serde_json::to_string(f)
+        .unwrap_or_default()
+        .replace("</", "<\\/");
+    let _ = write!(
+        h,
+        "<script type=\"application/json\" id=\"actuary-figures\">{json}</script>"
+    );
     h.push_str("</main></body></html>\n");
     h
 }
@@ -83,8 +88,15 @@ pub fn table(h: &mut String, head: &[&str], rows: &[Vec<String>]) {
     for r in rows {
         h.push_str("<tr>");
         for c in r {
-            let numeric = !c.is_empty() && c.trim_start_matches(['-', '+']).chars().all(|ch| ch.is_ascii_digit() || ".e%x ".contains(ch));
-            let _ = write!(h, "<td{}>{c}</td>", if numeric { " class=\"n\"" } else { "" });
+            let numeric = !c.is_empty()
+                && c.trim_start_matches(['-', '+'])
+                    .chars()
+                    .all(|ch| ch.is_ascii_digit() || ".e%x ".contains(ch));
+            let _ = write!(
+                h,
+                "<td{}>{c}</td>",
+                if numeric { " class=\"n\"" } else { "" }
+            );
         }
         h.push_str("</tr>");
     }
@@ -143,7 +155,10 @@ fn summary(h: &mut String, f: &RunFigures) {
                 if s.present {
                     "<span class=\"good\">done</span>".into()
                 } else {
-                    format!("<span class=\"bad\">missing</span> {}", esc(s.note.as_deref().unwrap_or("")))
+                    format!(
+                        "<span class=\"bad\">missing</span> {}",
+                        esc(s.note.as_deref().unwrap_or(""))
+                    )
                 },
                 esc(s.tool_version.as_deref().unwrap_or("-")),
                 esc(s.key.as_deref().unwrap_or("-")),
@@ -152,7 +167,18 @@ fn summary(h: &mut String, f: &RunFigures) {
             ]
         })
         .collect();
-    table(h, &["stage", "status", "tool version", "key", "total (s)", "parts"], &rows);
+    table(
+        h,
+        &[
+            "stage",
+            "status",
+            "tool version",
+            "key",
+            "total (s)",
+            "parts",
+        ],
+        &rows,
+    );
     let timed: Vec<(usize, &str, f64)> = f
         .stages
         .iter()
@@ -161,7 +187,10 @@ fn summary(h: &mut String, f: &RunFigures) {
         .collect();
     if !timed.is_empty() {
         let names = f.stages.iter().map(|s| s.stage.clone()).collect();
-        let bars = timed.iter().map(|&(i, _, t)| (i as f64 - 0.4, i as f64 + 0.4, t)).collect();
+        let bars = timed
+            .iter()
+            .map(|&(i, _, t)| (i as f64 - 0.4, i as f64 + 0.4, t))
+            .collect();
         plots(
             h,
             &[Plot::new("Stage timings", "stage", "wall time (s)")
@@ -225,31 +254,63 @@ fn decode(h: &mut String, g: &Gathered) {
         d.dropped,
         d.repeated
     );
-    let fmt_rows: Vec<Vec<String>> = d.formats.iter().map(|(k, v)| vec![esc(k), v.to_string()]).collect();
+    let fmt_rows: Vec<Vec<String>> = d
+        .formats
+        .iter()
+        .map(|(k, v)| vec![esc(k), v.to_string()])
+        .collect();
     table(h, &["source format (container/codec)", "clips"], &fmt_rows);
     let fps: Vec<f64> = d.clips.iter().map(|c| c.source_fps).collect();
-    let (lo, hi) = fps.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
-    let (edges, counts) = super::svg::histogram(&fps, lo.floor(), hi.ceil().max(lo.floor() + 1.0), 12);
+    let (lo, hi) = fps
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| {
+            (a.min(v), b.max(v))
+        });
+    let (edges, counts) =
+        super::svg::histogram(&fps, lo.floor(), hi.ceil().max(lo.floor() + 1.0), 12);
     let mut sizes: std::collections::BTreeMap<&str, f64> = Default::default();
     for c in &d.clips {
         *sizes.entry(c.source_size.as_str()).or_default() += 1.0;
     }
-    let size_bars = sizes.values().enumerate().map(|(i, &v)| (i as f64 - 0.4, i as f64 + 0.4, v)).collect();
-    let per_clip: Vec<(f64, f64)> = d.clips.iter().enumerate().map(|(i, c)| (i as f64, c.dropped as f64)).collect();
-    let per_clip_rep: Vec<(f64, f64)> = d.clips.iter().enumerate().map(|(i, c)| (i as f64, c.repeated as f64)).collect();
+    let size_bars = sizes
+        .values()
+        .enumerate()
+        .map(|(i, &v)| (i as f64 - 0.4, i as f64 + 0.4, v))
+        .collect();
+    let per_clip: Vec<(f64, f64)> = d
+        .clips
+        .iter()
+        .enumerate()
+        .map(|(i, c)| (i as f64, c.dropped as f64))
+        .collect();
+    let per_clip_rep: Vec<(f64, f64)> = d
+        .clips
+        .iter()
+        .enumerate()
+        .map(|(i, c)| (i as f64, c.repeated as f64))
+        .collect();
     plots(
         h,
         &[
-            Plot::new("Source frame rates", "source fps (frames/s)", "clips").histogram("", &edges, &counts, PALETTE[0], 0.8),
+            Plot::new("Source frame rates", "source fps (frames/s)", "clips")
+                .histogram("", &edges, &counts, PALETTE[0], 0.8),
             Plot::new("Source frame sizes", "width x height (pixels)", "clips")
                 .categories(sizes.keys().map(|s| s.to_string()).collect())
                 .bars("", size_bars, PALETTE[2], 0.8),
-            Plot::new("Dropped and repeated frames", "clip (index in table order)", "frames")
-                .scatter("dropped", per_clip, PALETTE[3])
-                .scatter("repeated", per_clip_rep, PALETTE[1]),
+            Plot::new(
+                "Dropped and repeated frames",
+                "clip (index in table order)",
+                "frames",
+            )
+            .scatter("dropped", per_clip, PALETTE[3])
+            .scatter("repeated", per_clip_rep, PALETTE[1]),
         ],
     );
-    let mut worst: Vec<&super::figures::DecodedClip> = d.clips.iter().filter(|c| c.dropped + c.repeated > 0).collect();
+    let mut worst: Vec<&super::figures::DecodedClip> = d
+        .clips
+        .iter()
+        .filter(|c| c.dropped + c.repeated > 0)
+        .collect();
     worst.sort_by(|a, b| (b.dropped + b.repeated).cmp(&(a.dropped + a.repeated)));
     let rows: Vec<Vec<String>> = worst
         .iter()
@@ -275,12 +336,28 @@ fn decode(h: &mut String, g: &Gathered) {
         h.push_str("<h3>Clips with the most dropped or repeated frames</h3>");
         table(
             h,
-            &["set", "clip", "format", "fps", "size", "duration (s)", "frames", "dropped", "repeated", "colour"],
+            &[
+                "set",
+                "clip",
+                "format",
+                "fps",
+                "size",
+                "duration (s)",
+                "frames",
+                "dropped",
+                "repeated",
+                "colour",
+            ],
             &rows,
         );
     }
     if !d.unreadable.is_empty() {
-        let _ = write!(h, "<p class=\"bad\">{} clip record(s) could not be read: {}</p>", d.unreadable.len(), esc(&d.unreadable.join("; ")));
+        let _ = write!(
+            h,
+            "<p class=\"bad\">{} clip record(s) could not be read: {}</p>",
+            d.unreadable.len(),
+            esc(&d.unreadable.join("; "))
+        );
     }
     h.push_str("</section>");
 }
@@ -325,16 +402,39 @@ fn shard(h: &mut String, f: &RunFigures) {
             ]
         })
         .collect();
-    table(h, &["file", "size", "rows (manifest)", "rows (footer)", "sha256 (manifest)", "checksum"], &rows);
+    table(
+        h,
+        &[
+            "file",
+            "size",
+            "rows (manifest)",
+            "rows (footer)",
+            "sha256 (manifest)",
+            "checksum",
+        ],
+        &rows,
+    );
     if !s.rows_per_set.is_empty() {
-        let rows: Vec<Vec<String>> = s.rows_per_set.iter().map(|(k, v)| vec![esc(k), v.to_string()]).collect();
+        let rows: Vec<Vec<String>> = s
+            .rows_per_set
+            .iter()
+            .map(|(k, v)| vec![esc(k), v.to_string()])
+            .collect();
         table(h, &["set", "rows"], &rows);
     }
     if !s.extra_files.is_empty() {
-        let _ = write!(h, "<p class=\"bad\">Unexpected file(s) in the shard folder: {}</p>", esc(&s.extra_files.join(", ")));
+        let _ = write!(
+            h,
+            "<p class=\"bad\">Unexpected file(s) in the shard folder: {}</p>",
+            esc(&s.extra_files.join(", "))
+        );
     }
     if !s.columns.is_empty() {
-        let _ = write!(h, "<p class=\"meta\">Columns: {}</p>", esc(&s.columns.join(", ")));
+        let _ = write!(
+            h,
+            "<p class=\"meta\">Columns: {}</p>",
+            esc(&s.columns.join(", "))
+        );
     }
     h.push_str("</section>");
 }

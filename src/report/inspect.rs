@@ -56,9 +56,16 @@ pub enum InspectError {
 }
 
 /// Renders the summary of one stage (or every stage) of `run`.
-pub fn inspect(run: &Path, stage: Option<Stage>, json: bool, verify: bool) -> Result<String, InspectError> {
+pub fn inspect(
+    run: &Path,
+    stage: Option<Stage>,
+    json: bool,
+    verify: bool,
+) -> Result<String, InspectError> {
     if !run.is_dir() {
-        return Err(InspectError::NoRun { run: run.to_path_buf() });
+        return Err(InspectError::NoRun {
+            run: run.to_path_buf(),
+        });
     }
     if let Some(s) = stage {
         let path = crate::store::StageManifest::path(run, s.name());
@@ -81,7 +88,10 @@ pub fn inspect(run: &Path, stage: Option<Stage>, json: bool, verify: bool) -> Re
 }
 
 /// The `--json` value: every figure, or only `stage`'s section and row.
-pub fn json_value(f: &RunFigures, stage: Option<Stage>) -> Result<serde_json::Value, serde_json::Error> {
+pub fn json_value(
+    f: &RunFigures,
+    stage: Option<Stage>,
+) -> Result<serde_json::Value, serde_json::Error> {
     let mut v = serde_json::to_value(f)?;
     if let (Some(s), Some(obj)) = (stage, v.as_object_mut()) {
         for other in Stage::ALL.into_iter().filter(|o| *o != s) {
@@ -89,7 +99,12 @@ pub fn json_value(f: &RunFigures, stage: Option<Stage>) -> Result<serde_json::Va
         }
         obj.insert(
             "stages".into(),
-            serde_json::to_value(f.stages.iter().filter(|r| r.stage == s.name()).collect::<Vec<&StageRow>>())?,
+            serde_json::to_value(
+                f.stages
+                    .iter()
+                    .filter(|r| r.stage == s.name())
+                    .collect::<Vec<&StageRow>>(),
+            )?,
         );
     }
     Ok(v)
@@ -107,7 +122,11 @@ fn text(g: &Gathered, stage: Option<Stage>) -> String {
             f.spec.sha256.as_deref().unwrap_or("not recorded")
         );
     }
-    for row in f.stages.iter().filter(|r| stage.is_none_or(|s| s.name() == r.stage)) {
+    for row in f
+        .stages
+        .iter()
+        .filter(|r| stage.is_none_or(|s| s.name() == r.stage))
+    {
         let s = Stage::parse(&row.stage).expect("stage rows are named by Stage::name");
         match &row.note {
             Some(note) => {
@@ -182,12 +201,24 @@ fn decode(o: &mut String, f: &RunFigures) {
     for (k, v) in &d.formats {
         let _ = writeln!(o, "  format {k:<20} {v} clip(s)");
     }
-    let _ = writeln!(o, "  {:<12} {:<24} {:>6} {:>8} {:>10} {:>9} {:>5} {:>5} colour", "set", "clip", "frames", "src fps", "src size", "dur (s)", "drop", "rep");
+    let _ = writeln!(
+        o,
+        "  {:<12} {:<24} {:>6} {:>8} {:>10} {:>9} {:>5} {:>5} colour",
+        "set", "clip", "frames", "src fps", "src size", "dur (s)", "drop", "rep"
+    );
     for c in &d.clips {
         let _ = writeln!(
             o,
             "  {:<12} {:<24} {:>6} {:>8.3} {:>10} {:>9.2} {:>5} {:>5} {}",
-            c.set, c.id, c.frames, c.source_fps, c.source_size, c.duration_s, c.dropped, c.repeated, c.colour
+            c.set,
+            c.id,
+            c.frames,
+            c.source_fps,
+            c.source_size,
+            c.duration_s,
+            c.dropped,
+            c.repeated,
+            c.colour
         );
     }
     for k in &d.skipped {
@@ -203,7 +234,13 @@ fn align(o: &mut String, f: &RunFigures) {
         return;
     }
     let a = f.align.get().expect("checked");
-    let _ = writeln!(o, "  domain gap {} -> {} ({})", num(a.gap_before, 3), num(a.gap_after, 3), a.gap_method);
+    let _ = writeln!(
+        o,
+        "  domain gap {} -> {} ({})",
+        num(a.gap_before, 3),
+        num(a.gap_after, 3),
+        a.gap_method
+    );
     let _ = writeln!(
         o,
         "  motion px/frame: labelled {}, unlabelled {}, ratio {}; resampled: {}",
@@ -246,7 +283,12 @@ fn fit(o: &mut String, f: &RunFigures) {
         return;
     }
     let x = f.fit.get().expect("checked");
-    let _ = writeln!(o, "  training log {} ({} rows)", x.log_file.as_deref().unwrap_or("none"), x.log_rows);
+    let _ = writeln!(
+        o,
+        "  training log {} ({} rows)",
+        x.log_file.as_deref().unwrap_or("none"),
+        x.log_rows
+    );
     for c in &x.log_columns {
         let _ = writeln!(o, "    last {:<22} {}", c.name, num(c.last, 4));
     }
@@ -255,15 +297,30 @@ fn fit(o: &mut String, f: &RunFigures) {
     }
     for r in &x.comparison {
         for (dim, m) in &r.dims {
-            let figs = m.iter().map(|(k, v)| format!("{k} {v:.3}")).collect::<Vec<_>>().join("  ");
+            let figs = m
+                .iter()
+                .map(|(k, v)| format!("{k} {v:.3}"))
+                .collect::<Vec<_>>()
+                .join("  ");
             let _ = writeln!(o, "  {:<18} on {:<12} {:<8} {figs}", r.model, r.eval, dim);
         }
     }
     if let Some(u) = x.eval_truth_used {
-        let _ = writeln!(o, "  evaluation truth used: {}", if u { "yes" } else { "no" });
+        let _ = writeln!(
+            o,
+            "  evaluation truth used: {}",
+            if u { "yes" } else { "no" }
+        );
     }
     for d in &x.holdout {
-        let _ = writeln!(o, "  holdout {:<8} n {:>6} R2 {} MAE {}", d.dim, d.n, num(d.r2, 3), num(d.mae, 3));
+        let _ = writeln!(
+            o,
+            "  holdout {:<8} n {:>6} R2 {} MAE {}",
+            d.dim,
+            d.n,
+            num(d.r2, 3),
+            num(d.mae, 3)
+        );
     }
 }
 
@@ -272,9 +329,20 @@ fn label(o: &mut String, f: &RunFigures) {
         return;
     }
     let l = f.label.get().expect("checked");
-    let _ = writeln!(o, "  alpha {:.3} (nominal coverage {:.3})", l.alpha, l.nominal_coverage);
+    let _ = writeln!(
+        o,
+        "  alpha {:.3} (nominal coverage {:.3})",
+        l.alpha, l.nominal_coverage
+    );
     for c in &l.coverage {
-        let _ = writeln!(o, "  coverage {:<8} holdout {} calib {:.3} quantile {}", c.dim, num(c.holdout, 3), c.calib, num(c.quantile, 3));
+        let _ = writeln!(
+            o,
+            "  coverage {:<8} holdout {} calib {:.3} quantile {}",
+            c.dim,
+            num(c.holdout, 3),
+            c.calib,
+            num(c.quantile, 3)
+        );
     }
     let r = &l.reliability;
     let _ = writeln!(
@@ -287,7 +355,11 @@ fn label(o: &mut String, f: &RunFigures) {
         num(l.holdout_ood_share, 3)
     );
     for b in r.bins.iter().filter(|b| b.count > 0) {
-        let _ = writeln!(o, "    bin [{:.1}, {:.1}) n {:>6} mean conf {:.3} observed {:.3}", b.lo, b.hi, b.count, b.mean_confidence, b.accuracy);
+        let _ = writeln!(
+            o,
+            "    bin [{:.1}, {:.1}) n {:>6} mean conf {:.3} observed {:.3}",
+            b.lo, b.hi, b.count, b.mean_confidence, b.accuracy
+        );
     }
     for s in &l.sets {
         let _ = writeln!(
@@ -305,12 +377,29 @@ fn label(o: &mut String, f: &RunFigures) {
     let mut top: Vec<_> = l.codes.iter().filter(|c| c.count > 0).collect();
     top.sort_by(|a, b| b.count.cmp(&a.count).then(a.code.cmp(&b.code)));
     for c in top.iter().take(10) {
-        let mean = c.mean_action.iter().map(|v| format!("{v:+.3}")).collect::<Vec<_>>().join(", ");
-        let _ = writeln!(o, "    code {:>3} count {:>7} labelled {:>6} mean action ({mean})", c.code, c.count, c.count_labelled);
+        let mean = c
+            .mean_action
+            .iter()
+            .map(|v| format!("{v:+.3}"))
+            .collect::<Vec<_>>()
+            .join(", ");
+        let _ = writeln!(
+            o,
+            "    code {:>3} count {:>7} labelled {:>6} mean action ({mean})",
+            c.code, c.count, c.count_labelled
+        );
     }
     let _ = writeln!(o, "  hand-label these first (lowest mean confidence):");
     for (i, c) in l.lowest_confidence.iter().enumerate() {
-        let _ = writeln!(o, "    {:>2}. {}/{} mean confidence {:.3} ood share {:.3}", i + 1, c.set, c.id, c.mean_confidence, c.ood_share);
+        let _ = writeln!(
+            o,
+            "    {:>2}. {}/{} mean confidence {:.3} ood share {:.3}",
+            i + 1,
+            c.set,
+            c.id,
+            c.mean_confidence,
+            c.ood_share
+        );
     }
     for u in &l.unreadable {
         let _ = writeln!(o, "  unreadable labels {u}");
@@ -322,7 +411,13 @@ fn shard(o: &mut String, f: &RunFigures) {
         return;
     }
     let s = f.shard.get().expect("checked");
-    let _ = writeln!(o, "  {} file(s), {} rows, {}", s.files.len(), s.rows, bytes(s.bytes));
+    let _ = writeln!(
+        o,
+        "  {} file(s), {} rows, {}",
+        s.files.len(),
+        s.rows,
+        bytes(s.bytes)
+    );
     for x in &s.files {
         let _ = writeln!(
             o,

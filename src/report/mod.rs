@@ -22,7 +22,9 @@ use std::path::Path;
 /// Renders the HTML report of `run` as a string (shards are re-hashed).
 pub fn render_report(run: &Path) -> Result<String, InspectError> {
     if !run.is_dir() {
-        return Err(InspectError::NoRun { run: run.to_path_buf() });
+        return Err(InspectError::NoRun {
+            run: run.to_path_buf(),
+        });
     }
     let gathered = collect::gather(run, true);
     Ok(html::page(&gathered))

@@ -103,8 +103,14 @@ impl Canvas {
         let head = (len * 0.35).clamp(4.0, 10.0);
         let (tx, ty) = (x + dx, y + dy);
         let wings = [
-            (tx - head * (ux * 0.87 - uy * 0.5), ty - head * (uy * 0.87 + ux * 0.5)),
-            (tx - head * (ux * 0.87 + uy * 0.5), ty - head * (uy * 0.87 - ux * 0.5)),
+            (
+                tx - head * (ux * 0.87 - uy * 0.5),
+                ty - head * (uy * 0.87 + ux * 0.5),
+            ),
+            (
+                tx - head * (ux * 0.87 + uy * 0.5),
+                ty - head * (uy * 0.87 - ux * 0.5),
+            ),
         ];
         for (r, c) in [(2.4, OUTLINE), (1.3, color)] {
             self.line(x, y, tx, ty, r, c);
@@ -131,12 +137,24 @@ pub fn base64(bytes: &[u8]) -> String {
     const T: &[u8; 64] = b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789+/";
     let mut out = String::with_capacity(bytes.len().div_ceil(3) * 4);
     for chunk in bytes.chunks(3) {
-        let b = [chunk[0], *chunk.get(1).unwrap_or(&0), *chunk.get(2).unwrap_or(&0)];
+        let b = [
+            chunk[0],
+            *chunk.get(1).unwrap_or(&0),
+            *chunk.get(2).unwrap_or(&0),
+        ];
         let n = (b[0] as u32) << 16 | (b[1] as u32) << 8 | b[2] as u32;
         out.push(T[(n >> 18) as usize & 63] as char);
         out.push(T[(n >> 12) as usize & 63] as char);
-        out.push(if chunk.len() > 1 { T[(n >> 6) as usize & 63] as char } else { '=' });
-        out.push(if chunk.len() > 2 { T[n as usize & 63] as char } else { '=' });
+        out.push(if chunk.len() > 1 {
+            T[(n >> 6) as usize & 63] as char
+        } else {
+            '='
+        });
+        out.push(if chunk.len() > 2 {
+            T[n as usize & 63] as char
+        } else {
+            '='
+        });
     }
     out
 }
@@ -144,8 +162,14 @@ pub fn base64(bytes: &[u8]) -> String {
 /// Index of the x-like and y-like action dimensions (`dx`/`x`..., else the
 /// first two); `None` with fewer than two dimensions.
 pub fn planar_dims(dims: &[String]) -> Option<(usize, usize)> {
-    let find = |names: &[&str]| dims.iter().position(|d| names.contains(&d.to_ascii_lowercase().as_str()));
-    match (find(&["dx", "x", "vx", "delta_x"]), find(&["dy", "y", "vy", "delta_y"])) {
+    let find = |names: &[&str]| {
+        dims.iter()
+            .position(|d| names.contains(&d.to_ascii_lowercase().as_str()))
+    };
+    match (
+        find(&["dx", "x", "vx", "delta_x"]),
+        find(&["dy", "y", "vy", "delta_y"]),
+    ) {
         (Some(x), Some(y)) if x != y => Some((x, y)),
         _ if dims.len() >= 2 => Some((0, 1)),
         _ => None,
@@ -159,7 +183,15 @@ mod tests {
     #[test]
     fn base64_matches_rfc4648_test_vectors() {
         // RFC 4648 section 10 test vectors.
-        for (i, o) in [("", ""), ("f", "Zg=="), ("fo", "Zm8="), ("foo", "Zm9v"), ("foob", "Zm9vYg=="), ("fooba", "Zm9vYmE="), ("foobar", "Zm9vYmFy")] {
+        for (i, o) in [
+            ("", ""),
+            ("f", "Zg=="),
+            ("fo", "Zm8="),
+            ("foo", "Zm9v"),
+            ("foob", "Zm9vYg=="),
+            ("fooba", "Zm9vYmE="),
+            ("foobar", "Zm9vYmFy"),
+        ] {
             assert_eq!(base64(i.as_bytes()), o);
         }
     }
@@ -168,7 +200,8 @@ mod tests {
     fn arrow_marks_pixels_along_its_direction() {
         let mut c = Canvas::new(40, 40, [0, 0, 0]);
         c.arrow(10.0, 20.0, 20.0, 0.0, ARROW);
-        let px = |x: u32, y: u32| &c.rgb[((y * 40 + x) * 3) as usize..((y * 40 + x) * 3 + 3) as usize];
+        let px =
+            |x: u32, y: u32| &c.rgb[((y * 40 + x) * 3) as usize..((y * 40 + x) * 3 + 3) as usize];
         assert_eq!(px(20, 20), ARROW);
         assert_eq!(px(20, 5), [0, 0, 0]);
     }

@@ -12,7 +12,11 @@ use parquet::file::reader::{FileReader, SerializedFileReader};
 use super::figures::{Section, ShardFigures, ShardFile};
 
 /// Gathers the shard figures of `shard_dir` from the manifest `summary`.
-pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> Section<ShardFigures> {
+pub fn figures(
+    shard_dir: &Path,
+    summary: &serde_json::Value,
+    verify: bool,
+) -> Section<ShardFigures> {
     let listed = summary
         .get("shards")
         .or_else(|| summary.get("files"))
@@ -24,16 +28,25 @@ pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> S
         let name = ["file", "name", "path"]
             .iter()
             .find_map(|k| entry.get(*k).and_then(|v| v.as_str()))
-            .map(|p| Path::new(p).file_name().map_or(p.to_string(), |n| n.to_string_lossy().into_owned()));
+            .map(|p| {
+                Path::new(p)
+                    .file_name()
+                    .map_or(p.to_string(), |n| n.to_string_lossy().into_owned())
+            });
         let Some(name) = name else { continue };
         files.insert(
             name.clone(),
             ShardFile {
                 file: name,
                 bytes: None,
-                rows: ["rows", "row_count", "num_rows"].iter().find_map(|k| entry.get(*k).and_then(|v| v.as_u64())),
+                rows: ["rows", "row_count", "num_rows"]
+                    .iter()
+                    .find_map(|k| entry.get(*k).and_then(|v| v.as_u64())),
                 footer_rows: None,
-                sha256: entry.get("sha256").and_then(|v| v.as_str()).map(String::from),
+                sha256: entry
+                    .get("sha256")
+                    .and_then(|v| v.as_str())
+                    .map(String::from),
                 verified: None,
             },
         );
@@ -54,17 +67,29 @@ pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> S
         }
     }
     if files.is_empty() {
-        return Section::Missing(format!("{} lists no shard files and holds none", shard_dir.display()));
+        return Section::Missing(format!(
+            "{} lists no shard files and holds none",
+            shard_dir.display()
+        ));
     }
     let mut columns = Vec::new();
     for f in files.values_mut() {
         let path = shard_dir.join(&f.file);
         f.bytes = std::fs::metadata(&path).ok().map(|m| m.len());
-        if let Some(reader) = std::fs::File::open(&path).ok().and_then(|h| SerializedFileReader::new(h).ok()) {
+        if let Some(reader) = std::fs::File::open(&path)
+            .ok()
+            .and_then(|h| SerializedFileReader::new(h).ok())
+        {
             let meta = reader.metadata().file_metadata();
             f.footer_rows = u64::try_from(meta.num_rows()).ok();
             if columns.is_empty() {
-                columns = meta.schema_descr().root_schema().get_fields().iter().map(|c| c.name().to_string()).collect();
+                columns = meta
+                    .schema_descr()
+                    .root_schema()
+                    .get_fields()
+                    .iter()
+                    .map(|c| c.name().to_string())
+                    .collect();
             }
         }
         if verify {
@@ -78,7 +103,10 @@ pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> S
         .map(|rd| {
             rd.filter_map(|e| e.ok())
                 .map(|e| e.file_name().to_string_lossy().into_owned())
-                .filter(|n| n != crate::store::manifest::MANIFEST_FILE && !files.get(n).is_some_and(|f| f.sha256.is_some()))
+                .filter(|n| {
+                    n != crate::store::manifest::MANIFEST_FILE
+                        && !files.get(n).is_some_and(|f| f.sha256.is_some())
+                })
                 .collect()
         })
         .unwrap_or_default();
@@ -86,7 +114,11 @@ pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> S
     let rows_per_set = summary
         .get("rows_per_set")
         .and_then(|v| v.as_object())
-        .map(|m| m.iter().filter_map(|(k, v)| v.as_u64().map(|n| (k.clone(), n))).collect())
+        .map(|m| {
+            m.iter()
+                .filter_map(|(k, v)| v.as_u64().map(|n| (k.clone(), n)))
+                .collect()
+        })
         .unwrap_or_default();
     let files: Vec<ShardFile> = files.into_values().collect();
     let all_ok = verify.then(|| {
@@ -96,7 +128,10 @@ pub fn figures(shard_dir: &Path, summary: &serde_json::Value, verify: bool) -> S
             && extra_files.is_empty()
     });
     Section::Ok(ShardFigures {
-        rows: files.iter().map(|f| f.rows.or(f.footer_rows).unwrap_or(0)).sum(),
+        rows: files
+            .iter()
+            .map(|f| f.rows.or(f.footer_rows).unwrap_or(0))
+            .sum(),
         bytes: files.iter().filter_map(|f| f.bytes).sum(),
         verified: verify,
         all_ok,

@@ -132,7 +132,13 @@ impl Plot {
     }
 
     /// Adds bars `(x0, x1, height)`.
-    pub fn bars(mut self, label: &str, bars: Vec<(f64, f64, f64)>, color: &str, opacity: f64) -> Self {
+    pub fn bars(
+        mut self,
+        label: &str,
+        bars: Vec<(f64, f64, f64)>,
+        color: &str,
+        opacity: f64,
+    ) -> Self {
         self.layers.push(Layer::Bars {
             label: label.into(),
             bars,
@@ -143,7 +149,14 @@ impl Plot {
     }
 
     /// Adds a histogram from bin `edges` (n + 1) and `counts` (n).
-    pub fn histogram(self, label: &str, edges: &[f64], counts: &[f64], color: &str, opacity: f64) -> Self {
+    pub fn histogram(
+        self,
+        label: &str,
+        edges: &[f64],
+        counts: &[f64],
+        color: &str,
+        opacity: f64,
+    ) -> Self {
         let bars = edges
             .windows(2)
             .zip(counts)
@@ -324,9 +337,15 @@ impl Plot {
         for layer in &self.layers {
             match layer {
                 Layer::Bars {
-                    bars, color, opacity, ..
+                    bars,
+                    color,
+                    opacity,
+                    ..
                 } => {
-                    for &(a, b, v) in bars.iter().filter(|b| b.0.is_finite() && b.1.is_finite() && b.2.is_finite()) {
+                    for &(a, b, v) in bars
+                        .iter()
+                        .filter(|b| b.0.is_finite() && b.1.is_finite() && b.2.is_finite())
+                    {
                         let (xa, xb) = (sx(a), sx(b));
                         let (ya, yb) = (sy(v.max(y0)), sy(0f64.max(y0)));
                         let _ = write!(
@@ -340,7 +359,10 @@ impl Plot {
                     }
                 }
                 Layer::Line {
-                    points, color, dashed, ..
+                    points,
+                    color,
+                    dashed,
+                    ..
                 } => {
                     let pts: Vec<String> = points
                         .iter()
@@ -348,7 +370,11 @@ impl Plot {
                         .map(|&(x, y)| format!("{:.1},{:.1}", sx(x), sy(y)))
                         .collect();
                     if !pts.is_empty() {
-                        let dash = if *dashed { r#" stroke-dasharray="5 4""# } else { "" };
+                        let dash = if *dashed {
+                            r#" stroke-dasharray="5 4""#
+                        } else {
+                            ""
+                        };
                         let _ = write!(
                             s,
                             r#"<polyline points="{}" fill="none" stroke="{color}" stroke-width="1.6"{dash}/>"#,
@@ -395,21 +421,39 @@ pub fn reliability(title: &str, bins: &[(f64, f64, f64, f64, u64)]) -> Plot {
         .filter(|b| b.4 > 0)
         .map(|b| (b.0, b.1, b.3))
         .collect();
-    let points: Vec<(f64, f64)> = bins.iter().filter(|b| b.4 > 0).map(|b| (b.2, b.3)).collect();
-    Plot::new(title, "predicted confidence", "observed share within tolerance")
-        .x_range(0.0, 1.0)
-        .y_range(0.0, 1.0)
-        .bars("observed", bars, PALETTE[0], 0.45)
-        .dashed("perfect calibration", vec![(0.0, 0.0), (1.0, 1.0)], "#555555")
-        .scatter("bin mean", points, PALETTE[1])
+    let points: Vec<(f64, f64)> = bins
+        .iter()
+        .filter(|b| b.4 > 0)
+        .map(|b| (b.2, b.3))
+        .collect();
+    Plot::new(
+        title,
+        "predicted confidence",
+        "observed share within tolerance",
+    )
+    .x_range(0.0, 1.0)
+    .y_range(0.0, 1.0)
+    .bars("observed", bars, PALETTE[0], 0.45)
+    .dashed(
+        "perfect calibration",
+        vec![(0.0, 0.0), (1.0, 1.0)],
+        "#555555",
+    )
+    .scatter("bin mean", points, PALETTE[1])
 }
 
 /// Histogram of `values` with `bins` equal bins over `[lo, hi]` (values
 /// outside are clamped into the end bins); returns (edges, counts).
 pub fn histogram(values: &[f64], lo: f64, hi: f64, bins: usize) -> (Vec<f64>, Vec<f64>) {
     let bins = bins.max(1);
-    let (lo, hi) = if hi > lo { (lo, hi) } else { (lo - 0.5, lo + 0.5) };
-    let edges: Vec<f64> = (0..=bins).map(|i| lo + (hi - lo) * i as f64 / bins as f64).collect();
+    let (lo, hi) = if hi > lo {
+        (lo, hi)
+    } else {
+        (lo - 0.5, lo + 0.5)
+    };
+    let edges: Vec<f64> = (0..=bins)
+        .map(|i| lo + (hi - lo) * i as f64 / bins as f64)
+        .collect();
     let mut counts = vec![0.0; bins];
     for &v in values.iter().filter(|v| v.is_finite()) {
         let i = (((v - lo) / (hi - lo)) * bins as f64).floor();
@@ -488,8 +532,9 @@ pub fn esc(s: &str) -> String {
 }
 
 fn fnv(s: &str) -> u64 {
-    s.bytes()
-        .fold(0xcbf29ce484222325u64, |h, b| (h ^ b as u64).wrapping_mul(0x100000001b3))
+    s.bytes().fold(0xcbf29ce484222325u64, |h, b| {
+        (h ^ b as u64).wrapping_mul(0x100000001b3)
+    })
 }
 
 #[cfg(test)]
@@ -498,7 +543,10 @@ mod tests {
 
     #[test]
     fn ticks_are_round_numbers_inside_the_range() {
-        assert_eq!(nice_ticks(0.0, 1.0, 5), vec![0.0, 0.2, 0.4, 0.6000000000000001, 0.8, 1.0]);
+        assert_eq!(
+            nice_ticks(0.0, 1.0, 5),
+            vec![0.0, 0.2, 0.4, 0.6000000000000001, 0.8, 1.0]
+        );
         let t = nice_ticks(-3.2, 17.9, 5);
         assert_eq!(t.first(), Some(&0.0));
         assert_eq!(t.last(), Some(&15.0));

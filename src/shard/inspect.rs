@@ -40,7 +40,10 @@ pub struct ShardInspection {
 impl ShardInspection {
     /// Whether every check passed (true when not verified).
     pub fn ok(&self) -> bool {
-        self.verified.as_ref().is_none_or(|v| v.iter().all(|c| c.ok)) && self.extra_files.is_empty()
+        self.verified
+            .as_ref()
+            .is_none_or(|v| v.iter().all(|c| c.ok))
+            && self.extra_files.is_empty()
     }
 
     /// A plain-text rendering.
@@ -71,7 +74,10 @@ impl ShardInspection {
             s.confidence.rows, s.confidence.mean, s.action_dims
         );
         for f in &s.shards {
-            let check = self.verified.as_ref().and_then(|v| v.iter().find(|c| c.file == f.file));
+            let check = self
+                .verified
+                .as_ref()
+                .and_then(|v| v.iter().find(|c| c.file == f.file));
             let mark = match check {
                 None => "",
                 Some(c) if c.ok => "  verified",

@@ -78,7 +78,21 @@ mod tests {
         let names: Vec<&str> = c.iter().map(|c| c.name.as_str()).collect();
         assert_eq!(
             names,
-            ["clip", "set", "labelled", "frame", "t", "image", "action", "action_est", "action_std", "confidence", "ood", "code", "split"]
+            [
+                "clip",
+                "set",
+                "labelled",
+                "frame",
+                "t",
+                "image",
+                "action",
+                "action_est",
+                "action_std",
+                "confidence",
+                "ood",
+                "code",
+                "split"
+            ]
         );
         assert_eq!(c[6].data_type, "list<float32>");
         assert!(c[6].nullable && !c[5].nullable);

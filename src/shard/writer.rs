@@ -13,8 +13,8 @@ use std::sync::Arc;
 
 use arrow_array::builder::{Float32Builder, ListBuilder};
 use arrow_array::{
-    ArrayRef, BinaryArray, BooleanArray, Float32Array, Float64Array, RecordBatch, StringArray, UInt16Array,
-    UInt32Array,
+    ArrayRef, BinaryArray, BooleanArray, Float32Array, Float64Array, RecordBatch, StringArray,
+    UInt16Array, UInt32Array,
 };
 use parquet::arrow::ArrowWriter;
 use parquet::basic::{Compression, ZstdLevel};
@@ -178,7 +178,8 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
             path: lpath.clone(),
             reason,
         };
-        let labels = ClipLabels::read(&label_dir, &rec.set, &rec.id).map_err(|e| bad(e.to_string()))?;
+        let labels =
+            ClipLabels::read(&label_dir, &rec.set, &rec.id).map_err(|e| bad(e.to_string()))?;
         let t = rec.frames.saturating_sub(1) as usize;
         if labels.frames != rec.frames || labels.action_est.len() != t || labels.code.len() != t {
             return Err(bad(format!(
@@ -189,13 +190,24 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
             )));
         }
         let frames = FrameReader::open(&ClipRecord::frames_path(&decode_dir, &rec.set, &rec.id))?;
-        clips.push(Clip { rec, labels, frames });
+        clips.push(Clip {
+            rec,
+            labels,
+            frames,
+        });
     }
-    let (width, height, fps) = clips.first().map_or((0, 0, 0.0), |c| (c.rec.width, c.rec.height, c.rec.fps));
+    let (width, height, fps) = clips
+        .first()
+        .map_or((0, 0, 0.0), |c| (c.rec.width, c.rec.height, c.rec.fps));
     let action_dims = calibration
         .as_ref()
         .map(|c| c.standardisation.dims.clone())
-        .or_else(|| clips.iter().find(|c| c.rec.labelled).map(|c| c.rec.action_dims.clone()))
+        .or_else(|| {
+            clips
+                .iter()
+                .find(|c| c.rec.labelled)
+                .map(|c| c.rec.action_dims.clone())
+        })
         .unwrap_or_default();
     for c in &clips {
         let inconsistent = |reason: String| ShardError::Inconsistent {
@@ -209,7 +221,9 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
                 c.rec.width, c.rec.height, c.rec.fps
             )));
         }
-        if (c.frames.width(), c.frames.height(), c.frames.len()) != (width, height, c.rec.frames as usize) {
+        if (c.frames.width(), c.frames.height(), c.frames.len())
+            != (width, height, c.rec.frames as usize)
+        {
             return Err(inconsistent(format!(
                 "frame store {} does not match the clip record",
                 c.frames.path().display()
@@ -240,7 +254,9 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
     let mut current: Option<OpenShard> = None;
     let mut rows_per_set: BTreeMap<String, u64> = BTreeMap::new();
     let mut conf = (0u64, 0.0f64);
-    let groups: Vec<&[(u32, u32)]> = order.chunks(job.opts.row_group_rows.max(1) as usize).collect();
+    let groups: Vec<&[(u32, u32)]> = order
+        .chunks(job.opts.row_group_rows.max(1) as usize)
+        .collect();
     let mut write_all = |batches: std::sync::mpsc::Receiver<Result<RecordBatch, ShardError>>| -> Result<(), ShardError> {
     for group in groups.iter().copied() {
         // Batches arrive in row-group order from the encoding thread.
@@ -313,7 +329,11 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
         },
         confidence: ConfidenceFigures {
             rows: conf.0,
-            mean: if conf.0 > 0 { conf.1 / conf.0 as f64 } else { 0.0 },
+            mean: if conf.0 > 0 {
+                conf.1 / conf.0 as f64
+            } else {
+                0.0
+            },
         },
         calibration,
         codes_table: format!("label/{CODES_FILE}"),
@@ -336,14 +356,23 @@ fn remove_stale(dir: &Path, shards: &[ShardFile]) -> Result<(), ShardError> {
             continue;
         }
         let path = entry.path();
-        let r = if path.is_dir() { fs::remove_dir_all(&path) } else { fs::remove_file(&path) };
+        let r = if path.is_dir() {
+            fs::remove_dir_all(&path)
+        } else {
+            fs::remove_file(&path)
+        };
         r.map_err(io_at(&path))?;
     }
     Ok(())
 }
 
 /// The record batch of one row group.
-fn build_batch(clips: &[Clip], group: &[(u32, u32)], image: ImageEncoding, g: usize) -> Result<RecordBatch, ShardError> {
+fn build_batch(
+    clips: &[Clip],
+    group: &[(u32, u32)],
+    image: ImageEncoding,
+    g: usize,
+) -> Result<RecordBatch, ShardError> {
     let images: Vec<Vec<u8>> = group
         .par_iter()
         .map(|&(ci, f)| {
@@ -351,14 +380,13 @@ fn build_batch(clips: &[Clip], group: &[(u32, u32)], image: ImageEncoding, g: us
             let rgb = c.frames.frame(f as usize);
             match image {
                 ImageEncoding::Raw => Ok(rgb.to_vec()),
-                ImageEncoding::Png => {
-                    crate::export::encode_png(rgb, c.rec.width, c.rec.height).map_err(|e| ShardError::Png {
+                ImageEncoding::Png => crate::export::encode_png(rgb, c.rec.width, c.rec.height)
+                    .map_err(|e| ShardError::Png {
                         set: c.rec.set.clone(),
                         id: c.rec.id.clone(),
                         frame: f,
                         message: e.to_string(),
-                    })
-                }
+                    }),
             }
         })
         .collect::<Result<_, _>>()?;
@@ -391,9 +419,18 @@ fn build_batch(clips: &[Clip], group: &[(u32, u32)], image: ImageEncoding, g: us
         code.push(c.labels.code.get(f).copied());
     }
     let columns: Vec<ArrayRef> = vec![
-        Arc::new(StringArray::from_iter_values(group.iter().map(|r| row(r).0.rec.id.as_str()))),
-        Arc::new(StringArray::from_iter_values(group.iter().map(|r| row(r).0.rec.set.as_str()))),
-        Arc::new(BooleanArray::from(group.iter().map(|r| row(r).0.rec.labelled).collect::<Vec<_>>())),
+        Arc::new(StringArray::from_iter_values(
+            group.iter().map(|r| row(r).0.rec.id.as_str()),
+        )),
+        Arc::new(StringArray::from_iter_values(
+            group.iter().map(|r| row(r).0.rec.set.as_str()),
+        )),
+        Arc::new(BooleanArray::from(
+            group
+                .iter()
+                .map(|r| row(r).0.rec.labelled)
+                .collect::<Vec<_>>(),
+        )),
         Arc::new(UInt32Array::from_iter_values(group.iter().map(|r| r.1))),
         Arc::new(Float64Array::from_iter_values(group.iter().map(|r| {
             let (c, f) = row(r);
@@ -406,7 +443,9 @@ fn build_batch(clips: &[Clip], group: &[(u32, u32)], image: ImageEncoding, g: us
         Arc::new(Float32Array::from(confidence)),
         Arc::new(BooleanArray::from(ood)),
         Arc::new(UInt16Array::from(code)),
-        Arc::new(StringArray::from_iter_values(group.iter().map(|r| row(r).0.labels.split.name()))),
+        Arc::new(StringArray::from_iter_values(
+            group.iter().map(|r| row(r).0.labels.split.name()),
+        )),
     ];
     RecordBatch::try_new(schema(), columns).map_err(|e| ShardError::Parquet {
         path: PathBuf::from(format!("row group {g}")),
@@ -450,9 +489,11 @@ impl OpenShard {
             inner: BufWriter::with_capacity(1 << 20, file),
             hasher: Sha256::new(),
         };
-        let writer = ArrowWriter::try_new(sink, schema(), Some(props.clone())).map_err(|e| ShardError::Parquet {
-            path: path.clone(),
-            message: e.to_string(),
+        let writer = ArrowWriter::try_new(sink, schema(), Some(props.clone())).map_err(|e| {
+            ShardError::Parquet {
+                path: path.clone(),
+                message: e.to_string(),
+            }
         })?;
         Ok(Self {
             writer,
@@ -503,7 +544,11 @@ impl OpenShard {
             file.sync_all().map_err(io_at(&tmp))?;
             let bytes = file.metadata().map_err(io_at(&tmp))?.len();
             drop(file);
-            let sha256: String = hasher.finalize().iter().map(|b| format!("{b:02x}")).collect();
+            let sha256: String = hasher
+                .finalize()
+                .iter()
+                .map(|b| format!("{b:02x}"))
+                .collect();
             let same = fs::metadata(&path).is_ok_and(|m| m.len() == bytes)
                 && crate::util::sha256_file(&path).is_ok_and(|h| h == sha256);
             if same {

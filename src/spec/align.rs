@@ -57,7 +57,11 @@ pub fn resolve(raw: &RawAlign, problems: &mut Problems<'_>) -> AlignOptions {
         if v.is_finite() && v >= 1.0 {
             o.speed_threshold = v;
         } else {
-            problems.at("align.speed-threshold", t.span(), format!("must be a number >= 1 (got {v})"));
+            problems.at(
+                "align.speed-threshold",
+                t.span(),
+                format!("must be a number >= 1 (got {v})"),
+            );
         }
     }
     if let Some(r) = resample {
@@ -71,7 +75,11 @@ pub fn resolve(raw: &RawAlign, problems: &mut Problems<'_>) -> AlignOptions {
         if (2..=i64::from(u32::MAX)).contains(&v) {
             o.gap_sample = v as u32;
         } else {
-            problems.at("align.gap-sample", g.span(), format!("must be a whole number >= 2 (got {v})"));
+            problems.at(
+                "align.gap-sample",
+                g.span(),
+                format!("must be a whole number >= 2 (got {v})"),
+            );
         }
     }
     o
@@ -95,7 +103,9 @@ mod tests {
 
     #[test]
     fn keys_resolve_and_ranges_are_checked() {
-        let (o, n) = parse("photometric = \"per-clip\"\nspeed = \"off\"\nspeed-threshold = 1.3\nresample = \"nearest\"\ncopy-frames = true\ngap-sample = 50\n");
+        let (o, n) = parse(
+            "photometric = \"per-clip\"\nspeed = \"off\"\nspeed-threshold = 1.3\nresample = \"nearest\"\ncopy-frames = true\ngap-sample = 50\n",
+        );
         assert_eq!(n, 0);
         assert_eq!(o.photometric, Photometric::PerClip);
         assert_eq!(o.speed, Speed::Off);

@@ -6,11 +6,21 @@ use toml::Spanned;
 use super::error::Problems;
 
 /// An integer key in `1..=max`; the default when absent or out of range.
-pub fn int_in(key: &str, v: &Option<Spanned<i64>>, default: u32, max: u32, p: &mut Problems<'_>) -> u32 {
+pub fn int_in(
+    key: &str,
+    v: &Option<Spanned<i64>>,
+    default: u32,
+    max: u32,
+    p: &mut Problems<'_>,
+) -> u32 {
     match v {
         None => default,
         Some(s) if *s.get_ref() < 1 || *s.get_ref() > max as i64 => {
-            p.at(key, s.span(), format!("must be an integer from 1 to {max} (got {})", s.get_ref()));
+            p.at(
+                key,
+                s.span(),
+                format!("must be an integer from 1 to {max} (got {})", s.get_ref()),
+            );
             default
         }
         Some(s) => *s.get_ref() as u32,
@@ -18,11 +28,20 @@ pub fn int_in(key: &str, v: &Option<Spanned<i64>>, default: u32, max: u32, p: &m
 }
 
 /// A finite positive number; the default when absent or not allowed.
-pub fn positive_f64(key: &str, v: &Option<Spanned<f64>>, default: f64, p: &mut Problems<'_>) -> f64 {
+pub fn positive_f64(
+    key: &str,
+    v: &Option<Spanned<f64>>,
+    default: f64,
+    p: &mut Problems<'_>,
+) -> f64 {
     match v {
         None => default,
         Some(s) if !(s.get_ref().is_finite() && *s.get_ref() > 0.0) => {
-            p.at(key, s.span(), format!("must be a positive number (got {})", s.get_ref()));
+            p.at(
+                key,
+                s.span(),
+                format!("must be a positive number (got {})", s.get_ref()),
+            );
             default
         }
         Some(s) => *s.get_ref(),

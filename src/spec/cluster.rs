@@ -46,7 +46,9 @@ pub const DEFAULT_MEM: &str = "8G";
 /// Default time limit per job (Slurm syntax).
 pub const DEFAULT_TIME: &str = "04:00:00";
 /// The job names that may have their own resources under `[cluster.jobs]`.
-pub const JOB_KINDS: &[&str] = &["default", "decode", "align", "fit", "label", "shard", "merge", "publish"];
+pub const JOB_KINDS: &[&str] = &[
+    "default", "decode", "align", "fit", "label", "shard", "merge", "publish",
+];
 
 /// `[cluster]` as written in the spec.
 #[derive(Debug, Deserialize, Default)]
@@ -260,7 +262,11 @@ pub fn resolve(raw: &RawCluster, problems: &mut Problems<'_>) -> ClusterOptions 
     let scratch = scratch.as_ref().map(|s| {
         let path = std::path::PathBuf::from(s.get_ref());
         if !path.is_absolute() {
-            problems.at("cluster.scratch", s.span(), "must be an absolute folder (it is on each node)");
+            problems.at(
+                "cluster.scratch",
+                s.span(),
+                "must be an absolute folder (it is on each node)",
+            );
         }
         path
     });
@@ -281,7 +287,10 @@ pub fn resolve(raw: &RawCluster, problems: &mut Problems<'_>) -> ClusterOptions 
             problems.at(
                 "cluster.publish",
                 u.span(),
-                format!("must be an s3://, gs://, az:// or file:// URL (got `{}`)", u.get_ref()),
+                format!(
+                    "must be an s3://, gs://, az:// or file:// URL (got `{}`)",
+                    u.get_ref()
+                ),
             );
         }
         u.get_ref().trim_end_matches('/').to_string()
@@ -300,7 +309,10 @@ pub fn resolve(raw: &RawCluster, problems: &mut Problems<'_>) -> ClusterOptions 
             problems.at(
                 "cluster.store.part-size-mb",
                 m.span(),
-                format!("must be from 5.3 to 5000 (S3's smallest part is 5 MiB; got {})", m.get_ref()),
+                format!(
+                    "must be from 5.3 to 5000 (S3's smallest part is 5 MiB; got {})",
+                    m.get_ref()
+                ),
             );
             d.store.part_size
         }
@@ -314,11 +326,18 @@ pub fn resolve(raw: &RawCluster, problems: &mut Problems<'_>) -> ClusterOptions 
         part_size,
     };
     let mut resolved_jobs = BTreeMap::new();
-    let base = jobs.get("default").map(|j| j.get_ref().clone()).unwrap_or_default();
+    let base = jobs
+        .get("default")
+        .map(|j| j.get_ref().clone())
+        .unwrap_or_default();
     for (name, job) in jobs {
         let key = format!("cluster.jobs.{name}");
         if !JOB_KINDS.contains(&name.as_str()) {
-            problems.at(&key, job.span(), format!("unknown job; allowed: {}", JOB_KINDS.join(", ")));
+            problems.at(
+                &key,
+                job.span(),
+                format!("unknown job; allowed: {}", JOB_KINDS.join(", ")),
+            );
             continue;
         }
         let j = job.get_ref();
@@ -331,14 +350,22 @@ pub fn resolve(raw: &RawCluster, problems: &mut Problems<'_>) -> ClusterOptions 
             if (1..=4096).contains(&c) {
                 r.cpus_per_task = c as u32;
             } else {
-                problems.at(&key, job.span(), format!("`cpus-per-task` must be from 1 to 4096 (got {c})"));
+                problems.at(
+                    &key,
+                    job.span(),
+                    format!("`cpus-per-task` must be from 1 to 4096 (got {c})"),
+                );
             }
         }
         if let Some(m) = mem {
             if is_slurm_mem(&m) {
                 r.mem = m;
             } else {
-                problems.at(&key, job.span(), format!("`mem` must be a number with K, M, G or T, like \"8G\" (got `{m}`)"));
+                problems.at(
+                    &key,
+                    job.span(),
+                    format!("`mem` must be a number with K, M, G or T, like \"8G\" (got `{m}`)"),
+                );
             }
         }
         if let Some(t) = time {
@@ -348,22 +375,38 @@ pub fn resolve(raw: &RawCluster, problems: &mut Problems<'_>) -> ClusterOptions 
                 problems.at(
                     &key,
                     job.span(),
-                    format!("`time` must be minutes, H:M:S or D-H:M:S, like \"02:00:00\" (got `{t}`)"),
+                    format!(
+                        "`time` must be minutes, H:M:S or D-H:M:S, like \"02:00:00\" (got `{t}`)"
+                    ),
                 );
             }
         }
         r.partition = pick(&j.partition, &base.partition);
-        let extra = j.extra.clone().or_else(|| base.extra.clone()).unwrap_or_default();
+        let extra = j
+            .extra
+            .clone()
+            .or_else(|| base.extra.clone())
+            .unwrap_or_default();
         for line in &extra {
             if !line.starts_with('-') || line.contains('\n') {
-                problems.at(&key, job.span(), format!("each `extra` entry is one sbatch option starting with `-` (got `{line}`)"));
+                problems.at(
+                    &key,
+                    job.span(),
+                    format!(
+                        "each `extra` entry is one sbatch option starting with `-` (got `{line}`)"
+                    ),
+                );
             }
         }
         r.extra = extra;
         resolved_jobs.insert(name.clone(), r);
     }
     if let Some(p) = program.as_ref().filter(|p| p.get_ref().trim().is_empty()) {
-        problems.at("cluster.program", p.span(), "must name the actuary program on the nodes");
+        problems.at(
+            "cluster.program",
+            p.span(),
+            "must name the actuary program on the nodes",
+        );
     }
     ClusterOptions {
         parts,
@@ -406,7 +449,14 @@ mod tests {
         assert_eq!(o.publish.as_deref(), Some("s3://b/p"));
         assert_eq!(o.store.part_size, 8_000_000);
         let fit = o.job("fit");
-        assert_eq!((fit.cpus_per_task, fit.mem.as_str(), fit.partition.as_deref()), (16, "4G", Some("cpu")));
+        assert_eq!(
+            (
+                fit.cpus_per_task,
+                fit.mem.as_str(),
+                fit.partition.as_deref()
+            ),
+            (16, "4G", Some("cpu"))
+        );
         assert_eq!(fit.extra, vec!["--account=lab".to_string()]);
         assert_eq!(o.job("label").cpus_per_task, 2);
     }

@@ -118,7 +118,11 @@ fn int(
     if (lo..=hi).contains(&x) {
         Some(x)
     } else {
-        problems.at(&format!("fit.{key}"), s.span(), format!("must be a whole number from {lo} to {hi} (got {x})"));
+        problems.at(
+            &format!("fit.{key}"),
+            s.span(),
+            format!("must be a whole number from {lo} to {hi} (got {x})"),
+        );
         None
     }
 }
@@ -135,7 +139,11 @@ fn num(
     if x.is_finite() && ok(x) {
         Some(x)
     } else {
-        problems.at(&format!("fit.{key}"), s.span(), format!("must be {what} (got {x})"));
+        problems.at(
+            &format!("fit.{key}"),
+            s.span(),
+            format!("must be {what} (got {x})"),
+        );
         None
     }
 }
@@ -172,7 +180,11 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
     if let Some(w) = widths {
         let list = w.get_ref();
         if list.is_empty() || list.len() > 6 || list.iter().any(|&c| !(1..=1024).contains(&c)) {
-            problems.at("fit.widths", span_of(w), "must list 1 to 6 widths, each from 1 to 1024");
+            problems.at(
+                "fit.widths",
+                span_of(w),
+                "must list 1 to 6 widths, each from 1 to 1024",
+            );
         } else {
             o.widths = list.iter().map(|&c| c as usize).collect();
         }
@@ -192,16 +204,40 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
     if let Some(v) = int("batch", batch, 4, 65_536, problems) {
         o.batch = size(v);
     }
-    if let Some(v) = num("learning-rate", learning_rate, |x| x > 0.0, "a positive number", problems) {
+    if let Some(v) = num(
+        "learning-rate",
+        learning_rate,
+        |x| x > 0.0,
+        "a positive number",
+        problems,
+    ) {
         o.learning_rate = v;
     }
-    if let Some(v) = num("labelled-share", labelled_share, |x| x > 0.0 && x < 1.0, "a number between 0 and 1 (exclusive)", problems) {
+    if let Some(v) = num(
+        "labelled-share",
+        labelled_share,
+        |x| x > 0.0 && x < 1.0,
+        "a number between 0 and 1 (exclusive)",
+        problems,
+    ) {
         o.labelled_share = v;
     }
-    if let Some(v) = num("action-weight", action_weight, |x| x > 0.0, "a positive number", problems) {
+    if let Some(v) = num(
+        "action-weight",
+        action_weight,
+        |x| x > 0.0,
+        "a positive number",
+        problems,
+    ) {
         o.action_weight = v;
     }
-    if let Some(v) = num("align-weight", align_weight, |x| x >= 0.0, "a number >= 0", problems) {
+    if let Some(v) = num(
+        "align-weight",
+        align_weight,
+        |x| x >= 0.0,
+        "a number >= 0",
+        problems,
+    ) {
         o.align_weight = v;
     }
     if let Some(v) = shared_variance {
@@ -210,18 +246,39 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
             RawSharedVariance::Learned => SharedVariance::Learned,
         };
     }
-    if let Some(v) = int("checkpoint-every", checkpoint_every, 1, i64::from(u32::MAX), problems) {
+    if let Some(v) = int(
+        "checkpoint-every",
+        checkpoint_every,
+        1,
+        i64::from(u32::MAX),
+        problems,
+    ) {
         o.checkpoint_every = v as u32;
     }
     let frac = |x: f64| (0.0..1.0).contains(&x);
-    if let Some(v) = num("calib-fraction", calib_fraction, frac, "a fraction from 0 to below 1", problems) {
+    if let Some(v) = num(
+        "calib-fraction",
+        calib_fraction,
+        frac,
+        "a fraction from 0 to below 1",
+        problems,
+    ) {
         o.calib_fraction = v;
     }
-    if let Some(v) = num("holdout-fraction", holdout_fraction, frac, "a fraction from 0 to below 1", problems) {
+    if let Some(v) = num(
+        "holdout-fraction",
+        holdout_fraction,
+        frac,
+        "a fraction from 0 to below 1",
+        problems,
+    ) {
         o.holdout_fraction = v;
     }
     if o.calib_fraction + o.holdout_fraction >= 1.0 {
-        let at = holdout_fraction.as_ref().or(calib_fraction.as_ref()).map(span_of);
+        let at = holdout_fraction
+            .as_ref()
+            .or(calib_fraction.as_ref())
+            .map(span_of);
         let msg = "calib-fraction + holdout-fraction must be below 1 (some clips must train)";
         match at {
             Some(span) => problems.at("fit.holdout-fraction", span, msg),
@@ -257,8 +314,14 @@ mod tests {
              labelled-share = 0.25\nalign-weight = 0\nshared-variance = \"learned\"\ncompare = false\n",
         );
         assert_eq!(n, 0);
-        assert_eq!((o.latent, o.widths.clone(), o.steps, o.batch), (4, vec![8, 16], 10, 8));
-        assert_eq!((o.learning_rate, o.labelled_share, o.align_weight), (1.0, 0.25, 0.0));
+        assert_eq!(
+            (o.latent, o.widths.clone(), o.steps, o.batch),
+            (4, vec![8, 16], 10, 8)
+        );
+        assert_eq!(
+            (o.learning_rate, o.labelled_share, o.align_weight),
+            (1.0, 0.25, 0.0)
+        );
         assert_eq!(o.shared_variance, SharedVariance::Learned);
         assert!(!o.compare);
         assert_eq!(parse("latent = 0\nlabelled-share = 1.0\nbatch = 2\n").1, 3);

@@ -7,8 +7,8 @@ use toml::Spanned;
 use super::checks::int_in;
 use super::error::Problems;
 use crate::label::{
-    DEFAULT_ALPHA, DEFAULT_BATCH, DEFAULT_CODES, DEFAULT_KMEANS_ITERATIONS, DEFAULT_KMEANS_RESTARTS,
-    DEFAULT_KMEANS_SAMPLE, DEFAULT_TOLERANCE, LabelOptions,
+    DEFAULT_ALPHA, DEFAULT_BATCH, DEFAULT_CODES, DEFAULT_KMEANS_ITERATIONS,
+    DEFAULT_KMEANS_RESTARTS, DEFAULT_KMEANS_SAMPLE, DEFAULT_TOLERANCE, LabelOptions,
 };
 
 /// `[label]` as written in the spec.
@@ -73,7 +73,13 @@ pub fn resolve(raw: &RawLabel, problems: &mut Problems<'_>) -> LabelOptions {
         }
         Some(s) => *s.get_ref(),
     };
-    let codes = int_in("label.codes", codes, DEFAULT_CODES, u16::MAX as u32, problems);
+    let codes = int_in(
+        "label.codes",
+        codes,
+        DEFAULT_CODES,
+        u16::MAX as u32,
+        problems,
+    );
     let kmeans_sample = int_in(
         "label.kmeans-sample",
         kmeans_sample,

@@ -5,7 +5,6 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-
 use super::checks::{int_in as positive_u32, positive_f64};
 use super::error::Problems;
 use super::raw::{RawActions, RawDecode, RawSet, RawSpec};
@@ -42,7 +41,11 @@ pub(crate) fn resolve(raw: RawSpec, path: &Path, base: &Path, p: &mut Problems<'
     let seed = match seed {
         None => DEFAULT_SEED,
         Some(s) if *s.get_ref() < 0 => {
-            p.at("seed", s.span(), format!("must be >= 0 (got {})", s.get_ref()));
+            p.at(
+                "seed",
+                s.span(),
+                format!("must be >= 0 (got {})", s.get_ref()),
+            );
             DEFAULT_SEED
         }
         Some(s) => *s.get_ref() as u64,
@@ -96,7 +99,11 @@ fn resolve_sets(
             .chars()
             .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
         {
-            p.at(&key, dir.span(), "set names may hold only letters, digits, `-` and `_`");
+            p.at(
+                &key,
+                dir.span(),
+                "set names may hold only letters, digits, `-` and `_`",
+            );
         }
         // An object store URL (s3://, gs://, az://, file://) is listed remotely.
         let remote = super::cluster::is_store_url(dir.get_ref());
@@ -155,14 +162,18 @@ fn resolve_decode(raw: RawDecode, p: &mut Problems<'_>) -> DecodeOptions {
     let (width, height) = match size {
         None => decode::DEFAULT_SIZE,
         Some(s) => match s.get_ref().as_slice() {
-            [w, h] if (2..=4096).contains(w) && (2..=4096).contains(h) && w % 2 == 0 && h % 2 == 0 => {
+            [w, h]
+                if (2..=4096).contains(w) && (2..=4096).contains(h) && w % 2 == 0 && h % 2 == 0 =>
+            {
                 (*w as u32, *h as u32)
             }
             other => {
                 p.at(
                     "decode.size",
                     s.span(),
-                    format!("must be [width, height], even integers from 2 to 4096 (got {other:?})"),
+                    format!(
+                        "must be [width, height], even integers from 2 to 4096 (got {other:?})"
+                    ),
                 );
                 decode::DEFAULT_SIZE
             }
@@ -217,12 +228,21 @@ fn resolve_actions(raw: RawActions, p: &mut Problems<'_>) -> ActionsOptions {
             OffsetValue::Estimate => Offset::Estimate,
             OffsetValue::Seconds(s) if s.is_finite() && s.abs() <= 3600.0 => Offset::Seconds(s),
             OffsetValue::Seconds(s) => {
-                p.at("actions.offset", o.span(), format!("must be within +-3600 s (got {s})"));
+                p.at(
+                    "actions.offset",
+                    o.span(),
+                    format!("must be within +-3600 s (got {s})"),
+                );
                 Offset::Seconds(0.0)
             }
         },
     };
-    let window = positive_f64("actions.offset-window", &offset_window, DEFAULT_OFFSET_WINDOW_S, p);
+    let window = positive_f64(
+        "actions.offset-window",
+        &offset_window,
+        DEFAULT_OFFSET_WINDOW_S,
+        p,
+    );
     let min_corr = match offset_min_correlation {
         None => DEFAULT_OFFSET_MIN_CORRELATION,
         Some(c) if !(0.0..=1.0).contains(c.get_ref()) => {

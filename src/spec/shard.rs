@@ -6,8 +6,8 @@ use toml::Spanned;
 
 use super::error::Problems;
 use crate::shard::{
-    DEFAULT_ROW_GROUP_ROWS, DEFAULT_SHUFFLE, DEFAULT_TARGET_SIZE_MB, DEFAULT_ZSTD_LEVEL, ImageEncoding,
-    ShardOptions,
+    DEFAULT_ROW_GROUP_ROWS, DEFAULT_SHUFFLE, DEFAULT_TARGET_SIZE_MB, DEFAULT_ZSTD_LEVEL,
+    ImageEncoding, ShardOptions,
 };
 
 /// `[shard]` as written in the spec.
@@ -46,7 +46,11 @@ pub fn resolve(raw: &RawShard, problems: &mut Problems<'_>) -> ShardOptions {
             problems.at(
                 "shard.row-group-rows",
                 s.span(),
-                format!("must be an integer from 1 to {} (got {})", 1 << 24, s.get_ref()),
+                format!(
+                    "must be an integer from 1 to {} (got {})",
+                    1 << 24,
+                    s.get_ref()
+                ),
             );
             DEFAULT_ROW_GROUP_ROWS
         }
@@ -105,8 +109,9 @@ mod tests {
 
     #[test]
     fn every_key_parses() {
-        let (o, problems) =
-            resolve_text("row-group-rows = 64\ntarget-size-mb = 1.5\nimage = \"raw\"\nshuffle = true\nzstd-level = 9\n");
+        let (o, problems) = resolve_text(
+            "row-group-rows = 64\ntarget-size-mb = 1.5\nimage = \"raw\"\nshuffle = true\nzstd-level = 9\n",
+        );
         assert!(problems.is_empty(), "{problems:?}");
         assert_eq!(
             o,
@@ -122,7 +127,8 @@ mod tests {
 
     #[test]
     fn bad_values_are_reported() {
-        let (_, problems) = resolve_text("row-group-rows = 0\ntarget-size-mb = -1.0\nzstd-level = 30\n");
+        let (_, problems) =
+            resolve_text("row-group-rows = 0\ntarget-size-mb = -1.0\nzstd-level = 30\n");
         assert_eq!(problems.len(), 3, "{problems:?}");
         assert!(problems[1].contains("line 2") && problems[1].contains("shard.target-size-mb"));
         assert!(toml::from_str::<RawShard>("image = \"jpeg\"").is_err());

@@ -3,8 +3,8 @@
 
 use std::fmt;
 
-use serde::de::{self, Deserializer, SeqAccess, Visitor};
 use serde::Deserialize;
+use serde::de::{self, Deserializer, SeqAccess, Visitor};
 
 /// `[actions] offset`: seconds, or `"estimate"`.
 #[derive(Debug, Clone, Copy, PartialEq)]

@@ -62,7 +62,12 @@ fn write_log(dir: &Path, name: &str, t: &[f64]) -> PathBuf {
 fn check_against_numpy(path: &Path, fps: f64, frames: u32, offset: f64) {
     let reference = python(
         NUMPY_REFERENCE,
-        &[s(path), &fps.to_string(), &frames.to_string(), &offset.to_string()],
+        &[
+            s(path),
+            &fps.to_string(),
+            &frames.to_string(),
+            &offset.to_string(),
+        ],
     );
     let reference: serde_json::Value = serde_json::from_str(&reference).unwrap();
     let sidecar = read_sidecar(path).unwrap();
@@ -155,20 +160,60 @@ fn bad_sidecars_name_file_and_line() {
     let cases: &[(&str, &str, u64, &str)] = &[
         ("empty", "", 1, "empty file"),
         ("header-only", "t,dx\n", 2, "no data rows"),
-        ("no-header", "0.0,1.0\n0.1,2.0\n", 1, "first column must be `t`"),
-        ("bad-first-column", "time,dx\n0,1\n", 1, "first column must be `t`"),
+        (
+            "no-header",
+            "0.0,1.0\n0.1,2.0\n",
+            1,
+            "first column must be `t`",
+        ),
+        (
+            "bad-first-column",
+            "time,dx\n0,1\n",
+            1,
+            "first column must be `t`",
+        ),
         ("only-t", "t\n0\n", 1, "no action dimensions"),
-        ("duplicate-dim", "t,dx,dy,dx\n0,1,2,3\n", 1, "`dx` appears twice"),
+        (
+            "duplicate-dim",
+            "t,dx,dy,dx\n0,1,2,3\n",
+            1,
+            "`dx` appears twice",
+        ),
         ("dim-named-t", "t,t\n0,1\n", 1, "`t` appears twice"),
         ("empty-dim-name", "t,dx,,dy\n0,1,2,3\n", 1, "no name"),
         ("nan", "t,dx,dy\n0,1,2\n0.02,NaN,2\n", 3, "`dx` is NaN"),
-        ("inf", "t,dx,dy\n0,1,2\n0.02,1,2\n0.04,1,-inf\n", 4, "`dy` is -inf"),
+        (
+            "inf",
+            "t,dx,dy\n0,1,2\n0.02,1,2\n0.04,1,-inf\n",
+            4,
+            "`dy` is -inf",
+        ),
         ("nan-t", "t,dx\n0,1\nnan,1\n", 3, "`t` is NaN"),
-        ("repeated-t", "t,dx\n0,1\n0.02,1\n0.02,2\n", 4, "does not increase"),
-        ("decreasing-t", "t,dx\n0,1\n0.04,1\n0.02,2\n", 4, "does not increase"),
-        ("too-few-columns", "t,dx,dy\n0,1,2\n0.02,1\n", 3, "expected 3 columns"),
+        (
+            "repeated-t",
+            "t,dx\n0,1\n0.02,1\n0.02,2\n",
+            4,
+            "does not increase",
+        ),
+        (
+            "decreasing-t",
+            "t,dx\n0,1\n0.04,1\n0.02,2\n",
+            4,
+            "does not increase",
+        ),
+        (
+            "too-few-columns",
+            "t,dx,dy\n0,1,2\n0.02,1\n",
+            3,
+            "expected 3 columns",
+        ),
         ("too-many-columns", "t,dx\n0,1\n0.02,1,5\n", 3, "found 3"),
-        ("non-numeric", "t,dx,grip\n0,1,open\n", 2, "`open` is not a number"),
+        (
+            "non-numeric",
+            "t,dx,grip\n0,1,open\n",
+            2,
+            "`open` is not a number",
+        ),
         ("empty-cell", "t,dx\n0,\n", 2, "column `dx`"),
         ("blank-line", "t,dx\n0,1\n\n0.02,1\n", 3, "blank line"),
     ];
@@ -184,7 +229,10 @@ fn bad_sidecars_name_file_and_line() {
             msg.contains(&format!("line {line}:")),
             "{name}: message does not name line {line}: {msg}"
         );
-        assert!(msg.contains(words), "{name}: message lacks `{words}`: {msg}");
+        assert!(
+            msg.contains(words),
+            "{name}: message lacks `{words}`: {msg}"
+        );
     }
     // A missing file names the file too.
     let missing = dir.path().join("missing.actions.csv");
@@ -247,5 +295,8 @@ pq.write_table(pa.table({'t': [0.0, 0.1, 0.2, 0.2], 'dx': [1.0, 2.0, 3.0, 4.0]})
         &[s(&pq)],
     );
     let msg = read_sidecar(&pq).unwrap_err().to_string();
-    assert!(msg.contains(&pq.display().to_string()) && msg.contains("row 4:"), "{msg}");
+    assert!(
+        msg.contains(&pq.display().to_string()) && msg.contains("row 4:"),
+        "{msg}"
+    );
 }

@@ -24,14 +24,19 @@ const H: usize = 64;
 struct Lcg(u64);
 impl Lcg {
     fn next(&mut self) -> f64 {
-        self.0 = self.0.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        self.0 = self
+            .0
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
         (self.0 >> 11) as f64 / (1u64 << 53) as f64
     }
 }
 
 /// A smooth texture on the plane (sums of sines), RGB in 0..255.
 fn texture(x: f64, y: f64) -> [f64; 3] {
-    let v = 128.0 + 45.0 * (0.37 * x).sin() * (0.29 * y).cos() + 30.0 * (0.61 * x + 0.23 * y).sin()
+    let v = 128.0
+        + 45.0 * (0.37 * x).sin() * (0.29 * y).cos()
+        + 30.0 * (0.61 * x + 0.23 * y).sin()
         + 15.0 * (0.13 * x - 0.41 * y).cos();
     [v, 0.8 * v + 20.0, 0.6 * v + 40.0]
 }
@@ -75,7 +80,12 @@ fn write_clip(
     sidecar: Option<PathBuf>,
 ) {
     let decode = run.join("decode");
-    let mut w = FrameWriter::create(&ClipRecord::frames_path(&decode, set, id), W as u32, H as u32).unwrap();
+    let mut w = FrameWriter::create(
+        &ClipRecord::frames_path(&decode, set, id),
+        W as u32,
+        H as u32,
+    )
+    .unwrap();
     for f in frames {
         w.push(f).unwrap();
     }
@@ -106,7 +116,11 @@ fn write_clip(
         },
         fingerprint: String::new(),
         key: String::new(),
-        action_dims: if labelled { vec!["dx".into(), "dy".into(), "grip".into()] } else { vec![] },
+        action_dims: if labelled {
+            vec!["dx".into(), "dy".into(), "grip".into()]
+        } else {
+            vec![]
+        },
         actions,
         sidecar,
         sidecar_fingerprint: None,
@@ -118,7 +132,20 @@ fn write_clip(
 fn ffmpeg_frames(path: &Path) -> Vec<Vec<u8>> {
     let raw = run_stdout(
         "ffmpeg",
-        &["-hide_banner", "-loglevel", "error", "-i", s(path), "-vf", "fps=10", "-f", "rawvideo", "-pix_fmt", "rgb24", "-"],
+        &[
+            "-hide_banner",
+            "-loglevel",
+            "error",
+            "-i",
+            s(path),
+            "-vf",
+            "fps=10",
+            "-f",
+            "rawvideo",
+            "-pix_fmt",
+            "rgb24",
+            "-",
+        ],
     );
     raw.chunks_exact(W * H * 3).map(<[u8]>::to_vec).collect()
 }
@@ -132,23 +159,57 @@ fn clip_sped_up_by_ffmpeg_setpts_reads_as_twice_the_motion_rate() {
         return;
     }
     let dir = tempfile::tempdir().unwrap();
-    let raw: Vec<u8> = (0..80).flat_map(|i| pan_frame(0.65 * i as f64, 0.4 * i as f64, [1.0; 3], [0.0; 3])).collect();
+    let raw: Vec<u8> = (0..80)
+        .flat_map(|i| pan_frame(0.65 * i as f64, 0.4 * i as f64, [1.0; 3], [0.0; 3]))
+        .collect();
     let raw_path = dir.path().join("pan.rgb");
     std::fs::write(&raw_path, raw).unwrap();
     let orig = dir.path().join("orig.mp4");
     let fast = dir.path().join("fast.mp4");
     ffmpeg(&[
-        "-f", "rawvideo", "-pix_fmt", "rgb24", "-s", "64x64", "-r", "20", "-i", s(&raw_path),
-        "-c:v", "libx264", "-crf", "12", "-pix_fmt", "yuv420p", s(&orig),
+        "-f",
+        "rawvideo",
+        "-pix_fmt",
+        "rgb24",
+        "-s",
+        "64x64",
+        "-r",
+        "20",
+        "-i",
+        s(&raw_path),
+        "-c:v",
+        "libx264",
+        "-crf",
+        "12",
+        "-pix_fmt",
+        "yuv420p",
+        s(&orig),
     ]);
-    ffmpeg(&["-i", s(&orig), "-vf", "setpts=0.5*PTS", "-c:v", "libx264", "-crf", "12", s(&fast)]);
-    let rate = |frames: &[Vec<u8>]| clip_motion(frames.len(), W, H, 500, |i| frames[i].clone()).rate.unwrap();
+    ffmpeg(&[
+        "-i",
+        s(&orig),
+        "-vf",
+        "setpts=0.5*PTS",
+        "-c:v",
+        "libx264",
+        "-crf",
+        "12",
+        s(&fast),
+    ]);
+    let rate = |frames: &[Vec<u8>]| {
+        clip_motion(frames.len(), W, H, 500, |i| frames[i].clone())
+            .rate
+            .unwrap()
+    };
     let a = ffmpeg_frames(&orig);
     let b = ffmpeg_frames(&fast);
     let (ra, rb) = (rate(&a), rate(&b));
     let ratio = rb / ra;
     eprintln!("motion rate original {ra:.3}, setpts=0.5 {rb:.3} px/frame, ratio {ratio:.3}");
-    assert!((ratio - 2.0).abs() <= 0.1, "motion rates {ra:.3} and {rb:.3} px/frame: ratio {ratio:.3}, want 2.0 +- 0.1");
+    assert!(
+        (ratio - 2.0).abs() <= 0.1,
+        "motion rates {ra:.3} and {rb:.3} px/frame: ratio {ratio:.3}, want 2.0 +- 0.1"
+    );
 }
 
 /// scikit-image's `rgb2lab` (D65, 2-degree observer) on the grid r, g, b in 0, 17, ..., 255.
@@ -185,7 +246,10 @@ fn rgb_to_cielab_matches_scikit_image_within_half_a_delta_e() {
         }
     }
     assert_eq!(i, reference.len());
-    assert!(worst < 0.5, "largest CIE76 Delta-E against scikit-image: {worst}");
+    assert!(
+        worst < 0.5,
+        "largest CIE76 Delta-E against scikit-image: {worst}"
+    );
 }
 
 /// Synthetic scenes: a textured background with a few coloured discs at random places.
@@ -193,7 +257,12 @@ fn scenes(n: usize, seed: u64) -> Vec<Vec<u8>> {
     let mut rng = Lcg(seed);
     (0..n)
         .map(|_| {
-            let mut f = pan_frame(rng.next() * 200.0, rng.next() * 200.0, [0.8, 0.8, 0.8], [10.0, 0.0, 5.0]);
+            let mut f = pan_frame(
+                rng.next() * 200.0,
+                rng.next() * 200.0,
+                [0.8, 0.8, 0.8],
+                [10.0, 0.0, 5.0],
+            );
             for _ in 0..3 {
                 let (cx, cy, r) = (rng.next() * 64.0, rng.next() * 64.0, 4.0 + rng.next() * 8.0);
                 let col = [rng.next() * 255.0, rng.next() * 255.0, rng.next() * 255.0];
@@ -262,14 +331,27 @@ fn gap_is_zero_against_itself_and_grows_with_colour_shift_and_blur() {
     let noise = gap(&base, &other);
     let mut last = 0.0;
     for amount in [5.0, 10.0, 20.0, 40.0] {
-        let g = gap(&base, &feats(&set.iter().map(|f| shift_colour(f, amount)).collect::<Vec<_>>()));
+        let g = gap(
+            &base,
+            &feats(
+                &set.iter()
+                    .map(|f| shift_colour(f, amount))
+                    .collect::<Vec<_>>(),
+            ),
+        );
         assert!(g > last, "colour shift {amount}: gap {g} not above {last}");
         last = g;
     }
-    assert!(noise < 0.25 * last, "sampling noise {noise} vs shifted gap {last}");
+    assert!(
+        noise < 0.25 * last,
+        "sampling noise {noise} vs shifted gap {last}"
+    );
     let mut last = 0.0;
     for radius in [1, 2, 3] {
-        let g = gap(&base, &feats(&set.iter().map(|f| box_blur(f, radius)).collect::<Vec<_>>()));
+        let g = gap(
+            &base,
+            &feats(&set.iter().map(|f| box_blur(f, radius)).collect::<Vec<_>>()),
+        );
         assert!(g > last, "blur radius {radius}: gap {g} not above {last}");
         last = g;
     }
@@ -296,7 +378,12 @@ fn gap_figure_matches_scipy_frechet_distance() {
     }
     let dir = tempfile::tempdir().unwrap();
     let a = feats(&scenes(80, 3));
-    let b = feats(&scenes(80, 4).iter().map(|f| shift_colour(&box_blur(f, 1), 12.0)).collect::<Vec<_>>());
+    let b = feats(
+        &scenes(80, 4)
+            .iter()
+            .map(|f| shift_colour(&box_blur(f, 1), 12.0))
+            .collect::<Vec<_>>(),
+    );
     let write = |name: &str, rows: &[[f64; FEATURES]]| {
         let mut t = String::new();
         for r in rows {
@@ -308,9 +395,15 @@ fn gap_figure_matches_scipy_frechet_distance() {
         p
     };
     let (pa, pb) = (write("a.csv", &a), write("b.csv", &b));
-    let reference: f64 = python(SCIPY_FRECHET, &[s(&pa), s(&pb)]).trim().parse().unwrap();
+    let reference: f64 = python(SCIPY_FRECHET, &[s(&pa), s(&pb)])
+        .trim()
+        .parse()
+        .unwrap();
     let ours = gap(&a, &b);
-    assert!((ours - reference).abs() <= 1e-6 * reference.max(1.0), "ours {ours}, scipy {reference}");
+    assert!(
+        (ours - reference).abs() <= 1e-6 * reference.max(1.0),
+        "ours {ours}, scipy {reference}"
+    );
 }
 
 /// A blob moving in bursts at 10 fps for 20 s, with its 50 Hz action log (dx, dy deltas in
@@ -388,23 +481,55 @@ fn sidecar_shifted_by_0_3_s_is_estimated_back_within_one_frame_interval() {
     let rules = [MapRule::Sum, MapRule::Sum, MapRule::Hold];
     let sidecar = read_sidecar(&side).unwrap();
     let at_zero = map_to_frames(&sidecar, &rules, fps, frames.len() as u32, 0.0).unwrap();
-    write_clip(&run, "robot", "c1", &frames, fps, Some(at_zero.clone()), Some(side.clone()));
+    write_clip(
+        &run,
+        "robot",
+        "c1",
+        &frames,
+        fps,
+        Some(at_zero.clone()),
+        Some(side.clone()),
+    );
     // An unrelated log (noise) must not be trusted.
     let mut rng = Lcg(5);
-    let noise: Vec<[f64; 4]> = log.iter().map(|r| [r[0], rng.next() - 0.5, rng.next() - 0.5, 0.0]).collect();
+    let noise: Vec<[f64; 4]> = log
+        .iter()
+        .map(|r| [r[0], rng.next() - 0.5, rng.next() - 0.5, 0.0])
+        .collect();
     let side2 = dir.path().join("c2.actions.csv");
     write_log(&side2, &noise, 0.0);
     let (frames2, _) = bursty_clip(12);
     let s2 = read_sidecar(&side2).unwrap();
-    write_clip(&run, "robot", "c2", &frames2, fps, Some(map_to_frames(&s2, &rules, fps, 200, 0.0).unwrap()), Some(side2));
-    let opts = AlignOptions { photometric: Photometric::Off, speed: Speed::Off, ..AlignOptions::default() };
+    write_clip(
+        &run,
+        "robot",
+        "c2",
+        &frames2,
+        fps,
+        Some(map_to_frames(&s2, &rules, fps, 200, 0.0).unwrap()),
+        Some(side2),
+    );
+    let opts = AlignOptions {
+        photometric: Photometric::Off,
+        speed: Speed::Off,
+        ..AlignOptions::default()
+    };
     let (alignment, summary) = align_run(&run, &opts, &actions_opts(Offset::Estimate), 2).unwrap();
     let c1 = alignment.clips.iter().find(|c| c.id == "c1").unwrap();
     let est = c1.offset.unwrap();
     eprintln!("offset estimate {est:?}");
     assert!(est.trusted, "{est:?}");
-    assert!((est.offset_s - -0.3).abs() <= 1.0 / fps, "estimated {est:?}, want -0.3 +- 0.1");
-    let c2 = alignment.clips.iter().find(|c| c.id == "c2").unwrap().offset.unwrap();
+    assert!(
+        (est.offset_s - -0.3).abs() <= 1.0 / fps,
+        "estimated {est:?}, want -0.3 +- 0.1"
+    );
+    let c2 = alignment
+        .clips
+        .iter()
+        .find(|c| c.id == "c2")
+        .unwrap()
+        .offset
+        .unwrap();
     assert!(!c2.trusted && c2.offset_s == 0.0, "noise log: {c2:?}");
     assert_eq!(summary.offsets.len(), 2);
     // Later stages read the re-mapped actions; the decode record keeps the originals.
@@ -423,24 +548,68 @@ fn faster_set_is_resampled_colour_matched_and_mapped_back_to_the_decode_grid() {
     let fps = 10.0;
     for c in 0..3 {
         let o = 40.0 * c as f64;
-        let robot: Vec<Vec<u8>> = (0..40).map(|i| pan_frame(o + 0.8 * i as f64, 0.6 * i as f64, [1.0; 3], [0.0; 3])).collect();
+        let robot: Vec<Vec<u8>> = (0..40)
+            .map(|i| pan_frame(o + 0.8 * i as f64, 0.6 * i as f64, [1.0; 3], [0.0; 3]))
+            .collect();
         let acts = vec![vec![0.8f32, 0.6, 0.0]; 39];
-        write_clip(&run, "robot", &format!("r{c}"), &robot, fps, Some(acts), None);
+        write_clip(
+            &run,
+            "robot",
+            &format!("r{c}"),
+            &robot,
+            fps,
+            Some(acts),
+            None,
+        );
         let human: Vec<Vec<u8>> = (0..40)
-            .map(|i| pan_frame(o + 1.6 * i as f64, 1.2 * i as f64, [0.8, 0.9, 1.1], [30.0, 10.0, -20.0]))
+            .map(|i| {
+                pan_frame(
+                    o + 1.6 * i as f64,
+                    1.2 * i as f64,
+                    [0.8, 0.9, 1.1],
+                    [30.0, 10.0, -20.0],
+                )
+            })
             .collect();
         write_clip(&run, "human", &format!("h{c}"), &human, fps, None, None);
     }
-    let (alignment, summary) = align_run(&run, &AlignOptions::default(), &actions_opts(Offset::Seconds(0.0)), 2).unwrap();
+    let (alignment, summary) = align_run(
+        &run,
+        &AlignOptions::default(),
+        &actions_opts(Offset::Seconds(0.0)),
+        2,
+    )
+    .unwrap();
     let human = summary.sets.iter().find(|s| s.name == "human").unwrap();
-    eprintln!("gap {} -> {}, speed factor {}", summary.gap_before, summary.gap_after, human.speed_factor);
-    assert!((human.speed_factor - 2.0).abs() < 0.15, "speed factor {}", human.speed_factor);
+    eprintln!(
+        "gap {} -> {}, speed factor {}",
+        summary.gap_before, summary.gap_after, human.speed_factor
+    );
+    assert!(
+        (human.speed_factor - 2.0).abs() < 0.15,
+        "speed factor {}",
+        human.speed_factor
+    );
     let robot_rate = summary.labelled_motion_rate.unwrap();
     let after = human.motion_rate_after.unwrap();
-    assert!((after / robot_rate - 1.0).abs() < 0.15, "after resampling {after} vs robot {robot_rate}");
-    assert!(summary.gap_after <= 0.5 * summary.gap_before, "gap {} -> {}", summary.gap_before, summary.gap_after);
+    assert!(
+        (after / robot_rate - 1.0).abs() < 0.15,
+        "after resampling {after} vs robot {robot_rate}"
+    );
+    assert!(
+        summary.gap_after <= 0.5 * summary.gap_before,
+        "gap {} -> {}",
+        summary.gap_before,
+        summary.gap_after
+    );
     assert_eq!(summary.resampled.as_deref(), Some("unlabelled"));
-    assert!(alignment.clips.iter().filter(|c| c.set == "robot").all(|c| c.speed_factor == 1.0));
+    assert!(
+        alignment
+            .clips
+            .iter()
+            .filter(|c| c.set == "robot")
+            .all(|c| c.speed_factor == 1.0)
+    );
 
     let view = AlignedRun::open(&run).unwrap();
     let h0 = view.clip("human", "h0").unwrap();
@@ -450,17 +619,25 @@ fn faster_set_is_resampled_colour_matched_and_mapped_back_to_the_decode_grid() {
     // A constant per-model-transition delta of 1 maps to ~2 per decode transition (sum), a
     // constant command stays itself (hold).
     let ones = vec![vec![1.0f32, 5.0]; h0.len() - 1];
-    let back = h0.to_decode_grid(&ones, &[MapRule::Sum, MapRule::Hold]).unwrap();
+    let back = h0
+        .to_decode_grid(&ones, &[MapRule::Sum, MapRule::Hold])
+        .unwrap();
     assert_eq!(back.len(), h0.decode_len() - 1);
     for (k, r) in back.iter().enumerate() {
         // Every decode interval but the last covers exactly `speed_factor` model intervals.
         if k + 1 < back.len() {
-            assert!((r[0] - h0.speed_factor() as f32).abs() < 1e-3, "row {k}: {r:?}");
+            assert!(
+                (r[0] - h0.speed_factor() as f32).abs() < 1e-3,
+                "row {k}: {r:?}"
+            );
         }
         assert_eq!(r[1], 5.0);
     }
     let total: f32 = back.iter().map(|r| r[0]).sum();
-    assert!((total - (h0.len() - 1) as f32).abs() < 1e-3, "sum rule keeps the total: {total}");
+    assert!(
+        (total - (h0.len() - 1) as f32).abs() < 1e-3,
+        "sum rule keeps the total: {total}"
+    );
     // Identity for the labelled clips, and the passthrough view.
     let r0 = view.clip("robot", "r0").unwrap();
     assert_eq!(r0.len(), r0.decode_len());

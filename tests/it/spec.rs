@@ -55,7 +55,10 @@ fn error_of(body: &str) -> String {
         Ok(_) => panic!("spec should be refused:\n{body}"),
         Err(e) => {
             let text = e.to_string();
-            assert!(text.contains("spec.toml"), "error must name the file: {text}");
+            assert!(
+                text.contains("spec.toml"),
+                "error must name the file: {text}"
+            );
             text
         }
     }
@@ -81,16 +84,28 @@ fn out_of_range_values_are_all_listed_with_line_and_column() {
         "{MINIMAL}[decode]\nfps = -3\nsize = [64]\n[actions]\noffset-min-correlation = 2.0\n"
     ));
     assert!(e.contains("3 problem(s)"), "{e}");
-    assert!(e.contains("line 6, column 7") && e.contains("decode.fps"), "{e}");
+    assert!(
+        e.contains("line 6, column 7") && e.contains("decode.fps"),
+        "{e}"
+    );
     assert!(e.contains("line 7") && e.contains("decode.size"), "{e}");
-    assert!(e.contains("line 9") && e.contains("actions.offset-min-correlation"), "{e}");
+    assert!(
+        e.contains("line 9") && e.contains("actions.offset-min-correlation"),
+        "{e}"
+    );
 }
 
 #[test]
 fn offset_takes_number_or_estimate_only() {
     let tmp = tempfile::tempdir().unwrap();
-    let path = write_spec(tmp.path(), &format!("{MINIMAL}[actions]\noffset = \"estimate\"\n"));
-    assert_eq!(Spec::load(&path).unwrap().actions.offset, actuary::spec::Offset::Estimate);
+    let path = write_spec(
+        tmp.path(),
+        &format!("{MINIMAL}[actions]\noffset = \"estimate\"\n"),
+    );
+    assert_eq!(
+        Spec::load(&path).unwrap().actions.offset,
+        actuary::spec::Offset::Estimate
+    );
     let e = error_of(&format!("{MINIMAL}[actions]\noffset = \"guess\"\n"));
     assert!(e.contains("estimate") && e.contains("line 6"), "{e}");
 }
@@ -98,10 +113,18 @@ fn offset_takes_number_or_estimate_only() {
 #[test]
 fn crop_box_and_names() {
     let tmp = tempfile::tempdir().unwrap();
-    let path = write_spec(tmp.path(), &format!("{MINIMAL}[decode]\ncrop = [0, 10, 320, 240]\n"));
+    let path = write_spec(
+        tmp.path(),
+        &format!("{MINIMAL}[decode]\ncrop = [0, 10, 320, 240]\n"),
+    );
     assert_eq!(
         Spec::load(&path).unwrap().decode.crop,
-        actuary::decode::Crop::Box { x: 0, y: 10, w: 320, h: 240 }
+        actuary::decode::Crop::Box {
+            x: 0,
+            y: 10,
+            w: 320,
+            h: 240
+        }
     );
     let e = error_of(&format!("{MINIMAL}[decode]\ncrop = \"middle\"\n"));
     assert!(e.contains("center") && e.contains("line 6"), "{e}");
@@ -110,7 +133,10 @@ fn crop_box_and_names() {
 #[test]
 fn missing_folder_is_named() {
     let e = error_of("out = \"run\"\n[sets.robot]\ndir = \"nowhere\"\nlabelled = true\n");
-    assert!(e.contains("sets.robot.dir") && e.contains("nowhere") && e.contains("line 3"), "{e}");
+    assert!(
+        e.contains("sets.robot.dir") && e.contains("nowhere") && e.contains("line 3"),
+        "{e}"
+    );
 }
 
 #[test]

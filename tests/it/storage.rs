@@ -27,10 +27,15 @@ impl Drop for Moto {
 }
 
 fn start_moto() -> Option<Moto> {
-    if !require_python(&["boto3", "moto"]) || !crate::util::require_tool("moto_server", &["--help"]) {
+    if !require_python(&["boto3", "moto"]) || !crate::util::require_tool("moto_server", &["--help"])
+    {
         return None;
     }
-    let port = TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+    let port = TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port();
     let child = Command::new("moto_server")
         .args(["-H", "127.0.0.1", "-p", &port.to_string()])
         .stdout(Stdio::null())
@@ -43,7 +48,10 @@ fn start_moto() -> Option<Moto> {
     };
     let started = Instant::now();
     while std::net::TcpStream::connect(("127.0.0.1", port)).is_err() {
-        assert!(started.elapsed() < Duration::from_secs(60), "moto_server did not start");
+        assert!(
+            started.elapsed() < Duration::from_secs(60),
+            "moto_server did not start"
+        );
         std::thread::sleep(Duration::from_millis(100));
     }
     Some(moto)
@@ -77,7 +85,10 @@ fn actuary_env(args: &[&str]) -> (i32, String, String) {
 }
 
 fn store_table(m: &Moto) -> String {
-    format!("[cluster.store]\nendpoint = \"{}\"\nallow-http = true\npart-size-mb = 5.3\n", m.endpoint)
+    format!(
+        "[cluster.store]\nendpoint = \"{}\"\nallow-http = true\npart-size-mb = 5.3\n",
+        m.endpoint
+    )
 }
 
 fn walk(dir: &Path, out: &mut Vec<std::path::PathBuf>) {
@@ -117,7 +128,10 @@ fn clip_set_in_s3_decodes_like_the_same_clips_on_disk() {
         .replace("run-local", "run-remote")
         .replace("\"clips/robot\"", "\"s3://clips/lab/clips/robot\"")
         .replace("\"clips/human\"", "\"s3://clips/lab/clips/human\"")
-        + &format!("[cluster]\nscratch = \"{}\"\nscratch-limit-gb = 0.001\n", s(&scratch))
+        + &format!(
+            "[cluster]\nscratch = \"{}\"\nscratch-limit-gb = 0.001\n",
+            s(&scratch)
+        )
         + &store_table(&m);
     let remote_spec = fx.root.join("remote.toml");
     std::fs::write(&remote_spec, remote).unwrap();
@@ -126,27 +140,49 @@ fn clip_set_in_s3_decodes_like_the_same_clips_on_disk() {
     assert_eq!(a.0, 0, "{}", a.2);
     let b = actuary_env(&["run", s(&remote_spec), "--until", "decode", "-j", "2"]);
     assert_eq!(b.0, 0, "{}", b.2);
-    let ma: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(fx.root.join("run-local/decode/manifest.json")).unwrap()).unwrap();
-    let mb: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(fx.root.join("run-remote/decode/manifest.json")).unwrap()).unwrap();
+    let ma: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(fx.root.join("run-local/decode/manifest.json")).unwrap(),
+    )
+    .unwrap();
+    let mb: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(fx.root.join("run-remote/decode/manifest.json")).unwrap(),
+    )
+    .unwrap();
     assert_eq!(ma["counts"], mb["counts"]);
     assert_eq!(mb["counts"]["decoded"], 4, "{mb}");
     // Same frames byte for byte; the records name the object URL, not the scratch copy.
-    for (set, id) in [("robot", "r0"), ("robot", "r1"), ("human", "h0"), ("human", "day2/h1")] {
+    for (set, id) in [
+        ("robot", "r0"),
+        ("robot", "r1"),
+        ("human", "h0"),
+        ("human", "day2/h1"),
+    ] {
         let rel = format!("decode/clips/{set}/{id}.frames");
         let fa = std::fs::read(fx.root.join("run-local").join(&rel)).unwrap();
         let fb = std::fs::read(fx.root.join("run-remote").join(&rel)).unwrap();
         assert!(fa == fb, "{rel} differs");
-        let rec = std::fs::read_to_string(fx.root.join("run-remote").join(format!("decode/clips/{set}/{id}.clip.json"))).unwrap();
-        assert!(rec.contains("s3://clips/lab/clips/") && !rec.contains(s(&scratch)), "{rec}");
+        let rec = std::fs::read_to_string(
+            fx.root
+                .join("run-remote")
+                .join(format!("decode/clips/{set}/{id}.clip.json")),
+        )
+        .unwrap();
+        assert!(
+            rec.contains("s3://clips/lab/clips/") && !rec.contains(s(&scratch)),
+            "{rec}"
+        );
     }
     let mut left = Vec::new();
     if scratch.exists() {
         walk(&scratch, &mut left);
     }
     assert!(left.is_empty(), "scratch not emptied: {left:?}");
-    let all = format!("{}{}{}", b.1, b.2, std::fs::read_to_string(fx.root.join("run-remote/decode/manifest.json")).unwrap());
+    let all = format!(
+        "{}{}{}",
+        b.1,
+        b.2,
+        std::fs::read_to_string(fx.root.join("run-remote/decode/manifest.json")).unwrap()
+    );
     assert!(!all.contains("secret-that-must-not-leak"));
 }
 
@@ -160,7 +196,9 @@ fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
     let shard = root.join("run/shard");
     std::fs::create_dir_all(&shard).unwrap();
     std::fs::write(shard.join("manifest.json"), "{\"stage\": \"shard\"}\n").unwrap();
-    let big: Vec<u8> = (0..6_000_000u32).map(|i| (i.wrapping_mul(2654435761) >> 13) as u8).collect();
+    let big: Vec<u8> = (0..6_000_000u32)
+        .map(|i| (i.wrapping_mul(2654435761) >> 13) as u8)
+        .collect();
     std::fs::write(shard.join("shard-00000.parquet"), &big).unwrap();
     std::fs::create_dir_all(root.join("clips")).unwrap();
     let spec = root.join("spec.toml");
@@ -180,26 +218,68 @@ fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
         &m,
         "for o in s3.list_objects_v2(Bucket='data', Prefix='tabletop/v1/')['Contents']:\n    print(o['Key'], o['Size'], o['ETag'])\n",
     );
-    assert!(listing.contains("tabletop/v1/shard-00000.parquet 6000000"), "{listing}");
-    assert!(listing.contains("-2\""), "multipart ETag expected: {listing}");
-    assert!(listing.contains("tabletop/v1/actuary-commit.json"), "{listing}");
+    assert!(
+        listing.contains("tabletop/v1/shard-00000.parquet 6000000"),
+        "{listing}"
+    );
+    assert!(
+        listing.contains("-2\""),
+        "multipart ETag expected: {listing}"
+    );
+    assert!(
+        listing.contains("tabletop/v1/actuary-commit.json"),
+        "{listing}"
+    );
 
     let again = actuary_env(&["publish", s(&spec)]);
-    assert!(again.0 == 0 && again.1.contains("already published"), "{}", again.1);
-    std::fs::write(shard.join("manifest.json"), "{\"stage\": \"shard\", \"changed\": true}\n").unwrap();
+    assert!(
+        again.0 == 0 && again.1.contains("already published"),
+        "{}",
+        again.1
+    );
+    std::fs::write(
+        shard.join("manifest.json"),
+        "{\"stage\": \"shard\", \"changed\": true}\n",
+    )
+    .unwrap();
     let other = actuary_env(&["publish", s(&spec)]);
-    assert!(other.0 != 0 && other.2.contains("different dataset is already published"), "{}", other.2);
+    assert!(
+        other.0 != 0 && other.2.contains("different dataset is already published"),
+        "{}",
+        other.2
+    );
 
     let dest = root.join("pulled");
-    let args = ["pull", "s3://data/tabletop/v1", s(&dest), "--endpoint", &m.endpoint, "--allow-http"];
+    let args = [
+        "pull",
+        "s3://data/tabletop/v1",
+        s(&dest),
+        "--endpoint",
+        &m.endpoint,
+        "--allow-http",
+    ];
     let pulled = actuary_env(&args);
     assert_eq!(pulled.0, 0, "{}", pulled.2);
     assert!(std::fs::read(dest.join("shard-00000.parquet")).unwrap() == big);
 
     // Without the marker (a half-published dataset) the reader refuses.
-    boto(&m, "s3.delete_object(Bucket='data', Key='tabletop/v1/actuary-commit.json')\n");
-    let refused = actuary_env(&["pull", "s3://data/tabletop/v1", s(&root.join("p2")), "--endpoint", &m.endpoint, "--allow-http"]);
+    boto(
+        &m,
+        "s3.delete_object(Bucket='data', Key='tabletop/v1/actuary-commit.json')\n",
+    );
+    let refused = actuary_env(&[
+        "pull",
+        "s3://data/tabletop/v1",
+        s(&root.join("p2")),
+        "--endpoint",
+        &m.endpoint,
+        "--allow-http",
+    ]);
     assert_ne!(refused.0, 0);
-    assert!(refused.2.contains("no commit marker") && refused.2.contains("refusing"), "{}", refused.2);
+    assert!(
+        refused.2.contains("no commit marker") && refused.2.contains("refusing"),
+        "{}",
+        refused.2
+    );
     assert!(!format!("{}{}{}", out.2, other.2, refused.2).contains("secret-that-must-not-leak"));
 }

@@ -60,7 +60,10 @@ pub fn ffmpeg(args: &[&str]) {
 
 /// Runs a command and returns its stdout, panicking with stderr on failure.
 pub fn run_stdout(program: &str, args: &[&str]) -> Vec<u8> {
-    let out = Command::new(program).args(args).output().expect("command runs");
+    let out = Command::new(program)
+        .args(args)
+        .output()
+        .expect("command runs");
     assert!(
         out.status.success(),
         "{program} {args:?} failed: {}",
@@ -93,4 +96,37 @@ pub fn actuary(args: &[&str]) -> (i32, String, String) {
         String::from_utf8_lossy(&out.stdout).into_owned(),
         String::from_utf8_lossy(&out.stderr).into_owned(),
     )
+}
+
+/// Makes `n` frames of 64x64 testsrc2 H.264 at 10 fps (source: the FFmpeg CLI's test pattern).
+pub fn make_clip(path: &Path, frames: u32, offset_s: u32) {
+    let src = format!("testsrc2=size=64x64:rate=10,trim=start={offset_s}");
+    ffmpeg(&[
+        "-f",
+        "lavfi",
+        "-i",
+        &src,
+        "-frames:v",
+        &frames.to_string(),
+        "-c:v",
+        "libx264",
+        "-pix_fmt",
+        "yuv420p",
+        s(path),
+    ]);
+}
+
+/// A 50 Hz sidecar covering `frames` frames at 10 fps: t, dx, dy, grip.
+pub fn make_sidecar(path: &Path, frames: u32, scale: f64) {
+    let mut text = String::from("t,dx,dy,grip\n");
+    for i in 0..frames * 5 {
+        let t = i as f64 / 50.0;
+        text += &format!(
+            "{t:.3},{:.4},{:.4},{}\n",
+            scale * (t * 3.0).sin(),
+            scale * (t * 2.0).cos(),
+            (i / 25) % 2
+        );
+    }
+    std::fs::write(path, text).unwrap();
 }
