@@ -16,6 +16,10 @@ R^2 is 1 - SS_res / SS_tot per action dimension, averaged over dimensions (the s
 definition as scikit-learn's r2_score with multioutput="uniform_average").
 
 Usage: bench/ablation.py [--bin target/release/actuary] [--out bench/out/ablation] [-j 2]
+                         [--only NAME ...]
+The clips are the committed demo-clips/ (pass --regen to generate them afresh
+into OUT/demo-clips with `actuary demo-clips`); --only runs just the named
+variants (e.g. --only "align off").
 Needs: python3 with numpy and pyarrow; a built actuary binary (built here when missing).
 Writes OUT/ablation.json and prints a Markdown table for the README.
 """
@@ -123,18 +127,24 @@ def main():
     ap.add_argument("--out", default=os.path.join(ROOT, "bench", "out", "ablation"))
     ap.add_argument("--spec", default=os.path.join(ROOT, "pipeline-specs", "tabletop.toml"))
     ap.add_argument("-j", "--threads", default="2")
+    ap.add_argument("--only", nargs="*", help="variant names to run (default: all)")
+    ap.add_argument("--regen", action="store_true", help="regenerate the demo clips instead of using demo-clips/")
     args = ap.parse_args()
     if not os.path.exists(args.bin):
         subprocess.run(["cargo", "build", "--release", "--bin", "actuary"], cwd=ROOT, check=True)
     os.makedirs(args.out, exist_ok=True)
-    demo = os.path.join(args.out, "demo-clips")
-    if not os.path.isdir(demo):
-        subprocess.run([args.bin, "demo-clips", demo], check=True)
+    demo = os.path.join(ROOT, "demo-clips")
+    if args.regen:
+        demo = os.path.join(args.out, "demo-clips")
+        if not os.path.isdir(demo):
+            subprocess.run([args.bin, "demo-clips", demo], check=True)
     base_text = open(args.spec).read()
     no_align = os.environ.get("ABLATION_NO_MODEL_ALIGN", "align-weight = 0")
     results = []
     first_run = None
     for name, extra in VARIANTS:
+        if args.only and name not in args.only:
+            continue
         extra = dict(extra)
         if extra["fit"] is None:
             k, v = [x.strip() for x in no_align.split("=", 1)]

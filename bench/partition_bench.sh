@@ -2,9 +2,10 @@
 # Decode speed-up from partitions through the local Slurm (benchmark, not a test).
 #
 #   bash .ci/slurm.sh start
-#   bash bench/partition_bench.sh [ROBOT_CLIPS] [HUMAN_CLIPS]
+#   bash bench/partition_bench.sh [ROBOT_CLIPS] [HUMAN_CLIPS] [SIZE]
 #
-# Generates the demo clips, then decodes the same clips twice through Slurm in
+# Generates the demo clips (SIZE x SIZE pixels, default 256, so that decoding,
+# not Slurm's scheduling, is most of the work), then decodes the same clips twice through Slurm in
 # one go: as 1 part (one task, 1 CPU) and as 2 parts (two tasks, 1 CPU each),
 # each into a fresh run folder. Wall time is from `actuary submit` to the
 # merged stage manifest; the per-part overhead is that wall time minus the
@@ -14,12 +15,13 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 ROBOT="${1:-40}"
 HUMAN="${2:-40}"
+SIZE="${3:-256}"
 BIN="${BIN:-target/release/actuary}"
 [ -x "$BIN" ] || cargo build --release --bin actuary >/dev/null
 BIN="$(realpath "$BIN")"
 WORK="$(mktemp -d)"
 trap 'rm -rf "$WORK"' EXIT
-"$BIN" demo-clips "$WORK/d" --robot-clips "$ROBOT" --human-clips "$HUMAN" >/dev/null
+"$BIN" demo-clips "$WORK/d" --robot-clips "$ROBOT" --human-clips "$HUMAN" --size "$SIZE" >/dev/null
 
 spec() { # name parts
   cat >"$WORK/$1.toml" <<EOF
@@ -69,11 +71,11 @@ EOF
 
 read -r W1 S1 M1 F1 D1 < <(measure one 1)
 read -r W2 S2 M2 F2 D2 < <(measure two 2)
-python3 - "$W1" "$S1" "$M1" "$F1" "$D1" "$W2" "$S2" "$M2" "$F2" "$D2" "$ROBOT" "$HUMAN" "$(nproc)" <<'EOF'
+python3 - "$W1" "$S1" "$M1" "$F1" "$D1" "$W2" "$S2" "$M2" "$F2" "$D2" "$ROBOT" "$HUMAN" "$(nproc)" "$SIZE" <<'EOF'
 import sys
 w1, s1, m1, f1, d1, w2, s2, m2, f2, d2 = map(float, sys.argv[1:11])
-robot, human, cores = sys.argv[11], sys.argv[12], sys.argv[13]
-print(f"decode through local Slurm, {robot}+{human} demo clips, {int(f1)} frames at 64x64, {cores} cores")
+robot, human, cores, size = sys.argv[11], sys.argv[12], sys.argv[13], sys.argv[14]
+print(f"decode through local Slurm, {robot}+{human} demo clips of {size}x{size} px, {int(f1)} frames decoded to 64x64, {cores} cores")
 print("| parts | wall s | slowest part s | overhead s | merge s | frames/s per core |")
 print("| --- | --- | --- | --- | --- | --- |")
 for n, w, s, m, f, d in [(1, w1, s1, m1, f1, d1), (2, w2, s2, m2, f2, d2)]:

@@ -1,7 +1,8 @@
 """The fit stage's network and training step in PyTorch (CPU), for the
 throughput comparison in bench/train_bench.sh. Same shapes, layers and loss
 as src/model/net.rs with the default Config (stem 2, widths 64-64-64,
-hidden 128, latent 8, 5 heads, reconstruction at half resolution,
+hidden 128, latent 8, 5 heads, global max of every level appended to the
+flat features, reconstruction at half resolution,
 closed-form shared variance, unbiased MMD^2 with the median heuristic),
 same batch (64 pairs, half labelled), AdamW.
 
@@ -46,7 +47,7 @@ class Pyramid(nn.Module):
             self.levels.append(nn.Linear(c, w))
             c = 4 * w
         side = H >> (STEM + len(WIDTHS) - 1)
-        self.fc = nn.Linear(side * side * WIDTHS[-1], HIDDEN)
+        self.fc = nn.Linear(side * side * WIDTHS[-1] + sum(WIDTHS), HIDDEN)
 
     def forward(self, x):
         for _ in range(STEM):
@@ -57,7 +58,10 @@ class Pyramid(nn.Module):
                 x = s2d(x)
             x = torch.relu(layer(x))
             feats.append(x)
-        return feats, torch.relu(self.fc(x.reshape(x.shape[0], -1)))
+        b = x.shape[0]
+        pooled = [f.reshape(b, -1, f.shape[-1]).amax(dim=1) for f in feats]
+        flat = torch.cat([x.reshape(b, -1)] + pooled, dim=1)
+        return feats, torch.relu(self.fc(flat))
 
 
 class Net(nn.Module):

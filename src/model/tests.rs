@@ -186,6 +186,7 @@ fn tiny_config(variance: SharedVariance) -> Config {
         heads: 2,
         recon_level: 1,
         variance,
+        global_max: true,
     }
 }
 
