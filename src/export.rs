@@ -57,8 +57,12 @@ pub enum ExportError {
 /// compression, one thread).
 pub fn encode_png(rgb: &[u8], width: u32, height: u32) -> Result<Vec<u8>, image::ImageError> {
     let mut out = Vec::with_capacity(rgb.len() / 2 + 64);
-    PngEncoder::new_with_quality(&mut out, CompressionType::Fast, FilterType::Paeth)
-        .write_image(rgb, width, height, image::ExtendedColorType::Rgb8)?;
+    PngEncoder::new_with_quality(&mut out, CompressionType::Fast, FilterType::Paeth).write_image(
+        rgb,
+        width,
+        height,
+        image::ExtendedColorType::Rgb8,
+    )?;
     Ok(out)
 }
 

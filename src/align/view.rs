@@ -188,6 +188,15 @@ impl AlignedClip {
     pub fn position(&self, i: usize) -> f64 {
         self.positions[i]
     }
+    /// Releases the pages of this clip's frame files read so far (see
+    /// [`FrameReader::release`]).
+    pub fn release(&self) {
+        self.frames.release();
+        if let Some(copy) = &self.copy {
+            copy.release();
+        }
+    }
+
     /// Decoded frame `k` as stored (RGB8, before colour normalisation).
     pub fn decode_frame(&self, k: usize) -> &[u8] {
         self.frames.frame(k)
@@ -356,6 +365,13 @@ pub struct AlignedRun {
 
 impl AlignedRun {
     /// Opens `RUN/align/alignment.json` and the decode store it refers to.
+    /// Releases the pages of every clip's frame files read so far.
+    pub fn release(&self) {
+        for clip in &self.clips {
+            clip.release();
+        }
+    }
+
     pub fn open(run_dir: &Path) -> Result<Self, AlignError> {
         let path = alignment_path(run_dir);
         let alignment: Alignment = read_json(&path).map_err(AlignError::io(&path))?;

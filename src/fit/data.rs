@@ -2,9 +2,9 @@
 //! bootstrap counts and seeded batch sampling of frame pairs.
 //!
 //! Frames are read one pair at a time from the aligned view (memory-mapped
-//! frame stores), so memory does not grow with the number of clips; the view
-//! is reopened every [`REOPEN_EVERY`] batches, which unmaps the pages read so
-//! far (mapped pages count towards the resident set size).
+//! frame stores), so memory does not grow with the number of clips; the pages
+//! read so far are released every [`RELEASE_EVERY`] batches (mapped pages
+//! count towards the resident set size, see `FrameReader::release`).
 
 use std::path::Path;
 
@@ -14,8 +14,9 @@ use super::FitError;
 use crate::align::{AlignedClip, AlignedRun};
 use crate::model::Rng;
 
-/// Batches between reopenings of the aligned view.
-pub const REOPEN_EVERY: u32 = 50;
+/// Batches between releases of the frame pages read (at 64 KiB of
+/// fault-around per frame read, about 33 MiB of mapped pages at most).
+pub const RELEASE_EVERY: u32 = 4;
 
 /// Largest random shift of training pairs, as a fraction of the frame's
 /// shorter side (4 pixels at 64x64). Random-shift augmentation (Kostrikov et

@@ -241,6 +241,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
             continue;
         };
         let preds = metrics::decode_grid_predictions(&refs, clip, &rules)?;
+        clip.release();
         holdout.add_clip(truth, &preds, &std);
     }
     tables.push(holdout.finish("holdout"));
@@ -268,6 +269,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
                 });
             }
             let preds = metrics::decode_grid_predictions(&refs, clip, &rules)?;
+            clip.release();
             ev.add_clip(&rows[..n], &preds, &std);
         }
         let mut table = ev.finish(&format!("unlabelled:{}", set.name));

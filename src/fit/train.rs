@@ -18,7 +18,7 @@ use candle_nn::VarMap;
 use super::FitError;
 use super::FitOptions;
 use super::checkpoint::{self, Identity};
-use super::data::{Dataset, REOPEN_EVERY};
+use super::data::{Dataset, RELEASE_EVERY};
 use crate::model::{self, AdamW, AdamWParams, Bandwidth, Batch, LossOptions, Net, Rng, SeededInit};
 
 /// Header of the per-step log.
@@ -181,8 +181,8 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
     pb.set_position(u64::from(start));
     let started = Instant::now();
     for step in start + 1..=opts.steps {
-        if step % REOPEN_EVERY == 0 {
-            ds.reopen()?;
+        if step % RELEASE_EVERY == 0 {
+            ds.view().release();
         }
         let lr = learning_rate(opts.learning_rate, step, opts.steps);
         opt.set_lr(lr);

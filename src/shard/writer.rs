@@ -295,6 +295,13 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
         scope.spawn(move || {
             for (g, group) in groups.iter().enumerate() {
                 let batch = pool.install(|| build_batch(clips, group, image, g));
+                // Unmap the frame pages this group read (see FrameReader::release).
+                let mut touched: Vec<u32> = group.iter().map(|&(ci, _)| ci).collect();
+                touched.sort_unstable();
+                touched.dedup();
+                for ci in touched {
+                    clips[ci as usize].frames.release();
+                }
                 let failed = batch.is_err();
                 if tx.send(batch).is_err() || failed {
                     break;

@@ -205,6 +205,26 @@ impl FrameReader {
         self.width as usize * self.height as usize * 3
     }
 
+    /// Drops this process's mappings of the pages read so far (`madvise`
+    /// `MADV_DONTNEED`), so they stop counting towards the resident set
+    /// size; later reads fault them in again from the page cache. The kernel
+    /// maps pages around every faulting one (fault-around, 64 KiB by default),
+    /// so random reads over many clips would otherwise grow the resident set
+    /// towards the size of all frame files (measured by `bench/fit_memory.sh`).
+    /// A no-op where `madvise` is not available.
+    pub fn release(&self) {
+        #[cfg(unix)]
+        // SAFETY: the mapping is read-only and backed by a file that is never
+        // modified after its atomic rename (see `open`); for such a mapping
+        // MADV_DONTNEED only drops page-table entries, and the next access
+        // reads the same bytes from the file again. No `&mut` to it exists.
+        unsafe {
+            let _ = self
+                .map
+                .unchecked_advise(memmap2::UncheckedAdvice::DontNeed);
+        }
+    }
+
     /// Frame `index` as RGB bytes; panics when out of range.
     pub fn frame(&self, index: usize) -> &[u8] {
         assert!(
