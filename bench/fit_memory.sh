@@ -100,6 +100,8 @@ measure() {
   actuary "$dir/demo-clips.log" "$BIN" demo-clips "$dir/clips" --robot-clips "$robot" --human-clips "$human"
   spec "$name"
   actuary "$dir/prepare.log" "$BIN" run "$dir/spec.toml" --until align -j "$THREADS"
+  # A kept BENCH_DIR may hold a finished fit: remove it so fit really runs.
+  rm -rf "$dir/run/fit"
   local t0 t1
   t0=$(date +%s.%N)
   actuary "$dir/fit.log" /usr/bin/time -v -o "$dir/fit.time" \
