@@ -171,13 +171,17 @@ impl FrameReader {
                 map.len()
             )));
         }
-        Ok(Self {
+        let reader = Self {
             map,
             path: path.to_path_buf(),
             width,
             height,
             frames,
-        })
+        };
+        // Reading the header faulted in the pages around it; a run that opens
+        // many clips should not keep them all mapped.
+        reader.release();
+        Ok(reader)
     }
 
     /// Frame width in pixels.
