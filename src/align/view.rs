@@ -364,7 +364,6 @@ pub struct AlignedRun {
 }
 
 impl AlignedRun {
-    /// Opens `RUN/align/alignment.json` and the decode store it refers to.
     /// Releases the pages of every clip's frame files read so far.
     pub fn release(&self) {
         for clip in &self.clips {
@@ -372,6 +371,7 @@ impl AlignedRun {
         }
     }
 
+    /// Opens `RUN/align/alignment.json` and the decode store it refers to.
     pub fn open(run_dir: &Path) -> Result<Self, AlignError> {
         let path = alignment_path(run_dir);
         let alignment: Alignment = read_json(&path).map_err(AlignError::io(&path))?;

@@ -216,8 +216,6 @@ impl Pool {
 
 /// The training data: the aligned view, splits and standardisation.
 pub struct Dataset {
-    run_dir: std::path::PathBuf,
-    actions_opts: crate::spec::ActionsOptions,
     run: AlignedRun,
     /// Every clip, in the view's (set, id) order.
     pub clips: Vec<ClipInfo>,
@@ -332,8 +330,6 @@ impl Dataset {
         });
         let standardisation = Standardisation::fit(&dims, rows);
         Ok(Self {
-            run_dir: run_dir.to_path_buf(),
-            actions_opts: actions_opts.clone(),
             run,
             clips,
             labelled_train,
@@ -353,12 +349,6 @@ impl Dataset {
     /// The aligned clip behind `info`.
     pub fn clip(&self, info: &ClipInfo) -> &AlignedClip {
         &self.run.clips()[info.index]
-    }
-
-    /// Reopens the aligned view (drops the memory mappings).
-    pub fn reopen(&mut self) -> Result<(), FitError> {
-        self.run = AlignedRun::open_or_passthrough(&self.run_dir, &self.actions_opts)?;
-        Ok(())
     }
 
     /// Labelled train transitions.

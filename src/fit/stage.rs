@@ -224,7 +224,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
     crate::store::write_json_atomic(&info_path, &info).map_err(FitError::io(&info_path))?;
 
     // Evaluation on the decode grid, in action units.
-    ds.reopen()?;
+    ds.view().release();
     let names: Vec<&str> = info.models.iter().map(String::as_str).collect();
     let refs: Vec<&FittedModel> = fitted_models.iter().collect();
     let rules = ds.view().rules().to_vec();

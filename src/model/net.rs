@@ -25,10 +25,10 @@
 //! `gmax(f_j)` is the maximum of each channel of `f_j` over all positions
 //! (global max pooling, `[B, c_j]` per level; only with `cfg.global_max`).
 //! The flat `f_L` says where things are; the global maxima say whether a
-//! pattern appears anywhere, with weights shared across positions. Without
-//! them the gripper state of the demo (a few pixels of finger gap that can be
-//! anywhere in the frame) must be learnt once per position of the `fc` layer,
-//! and was not learnt at all in 600 steps (holdout grip R^2 about 0).
+//! pattern appears anywhere, with weights shared across positions, so a small
+//! pattern need not be learnt once per position of the `fc` layer. On the
+//! demo they raised holdout dx / dy R^2 from 0.85 / 0.82 to 0.92 / 0.95 (600
+//! steps); the gripper state (a few pixels of finger gap) is still not learnt.
 //! Global pooling is Lin et al. 2014 ("Network in Network"); max rather than
 //! mean keeps a small pattern from being averaged away (common practice, no
 //! source).
