@@ -24,6 +24,7 @@
 
 mod checkpoint;
 mod data;
+pub use data::shift_frame;
 mod error;
 mod fitted;
 mod metrics;
@@ -43,7 +44,7 @@ pub use stage::{
     ComparisonRow, FitInputs, FitSummary, METRICS_FILE, ModelRun, fit_run, inspect_text, run_stage,
 };
 
-use crate::model::{self, SharedVariance};
+use crate::model::{self, HeadLoss, SharedVariance};
 
 /// Default training steps per model.
 pub const DEFAULT_STEPS: u32 = 600;
@@ -95,6 +96,17 @@ pub struct FitOptions {
     pub holdout_fraction: f64,
     /// Also train the labelled-only comparison model.
     pub compare: bool,
+    /// How the action heads are trained.
+    #[serde(default = "default_head_loss")]
+    pub head_loss: HeadLoss,
+    /// The posterior also sees where features are (the deepest map, flattened),
+    /// not only each level's global maxima.
+    #[serde(default)]
+    pub posterior_positions: bool,
+}
+
+fn default_head_loss() -> HeadLoss {
+    HeadLoss::Faithful
 }
 
 impl Default for FitOptions {
@@ -116,6 +128,8 @@ impl Default for FitOptions {
             calib_fraction: DEFAULT_CALIB_FRACTION,
             holdout_fraction: DEFAULT_HOLDOUT_FRACTION,
             compare: true,
+            head_loss: HeadLoss::Faithful,
+            posterior_positions: false,
         }
     }
 }
@@ -152,6 +166,7 @@ impl FitOptions {
             head_hidden: self.head_hidden,
             heads: self.heads,
             variance: self.shared_variance,
+            posterior_flat: self.posterior_positions,
             ..model::Config::default()
         }
     }

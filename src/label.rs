@@ -4,10 +4,14 @@
 //! then split conformal on the `calib` clips, stored as `q * std / z`), a
 //! calibrated `confidence`, an `ood` flag and a discrete `code`.
 //!
-//! Data flow: `RUN/decode/clips/**` (frames, records with recorded actions)
-//! and the fit stage's model and clip splits ([`model::FitOutputs`]) in;
-//! `RUN/label/` out (see [`output`]). The maths lives in [`conformal`],
-//! [`reliability`], [`kmeans`] and [`stats`]; [`stage`] runs the two passes.
+//! Data flow: `RUN/decode/clips/**` (records with recorded actions; frames
+//! read through the align stage's model-time view, [`crate::align::AlignedRun`],
+//! as the fit stage trains and evaluates on them) and the fit stage's model
+//! and clip splits ([`model::FitOutputs`]) in; `RUN/label/` out (see
+//! [`output`]), one row per decode transition: model-time outputs are mapped
+//! back with the `[actions]` rules ([`stage::decode_grid`]). The maths lives
+//! in [`conformal`], [`reliability`], [`kmeans`] and [`stats`]; [`stage`] runs
+//! the two passes.
 
 pub mod conformal;
 pub mod fitted;
@@ -23,9 +27,7 @@ use std::path::PathBuf;
 
 use serde::Serialize;
 
-pub use model::{
-    FitOutputs, FramePrep, Split, Splits, Standardisation, TransitionBatch, TransitionModel,
-};
+pub use model::{FitOutputs, Split, Splits, Standardisation, TransitionBatch, TransitionModel};
 pub use output::{CalibrationFigures, ClipLabels, CodesTable};
 pub use stage::{LabelJob, LabelSummary, label_run};
 
@@ -91,10 +93,20 @@ pub enum LabelError {
         #[source]
         source: std::io::Error,
     },
-    /// A frame store could not be read.
+    /// The align stage's view could not be opened, read or mapped back.
     #[error(transparent)]
-    Frames(#[from] crate::store::FrameStoreError),
-    /// The frame store and the clip record disagree.
+    Align(#[from] crate::align::AlignError),
+    /// A decoded clip is missing from the align stage's view.
+    #[error("clip {set}/{id} is decoded but not in the aligned view ({})", path.display())]
+    NotAligned {
+        /// `RUN/align/alignment.json`.
+        path: PathBuf,
+        /// Set.
+        set: String,
+        /// Clip id.
+        id: String,
+    },
+    /// The frame store (as the aligned view opened it) and the clip record disagree.
     #[error("frame store {path} holds {store} frames, its record says {record}")]
     FrameCount {
         /// The frame store.
@@ -113,13 +125,16 @@ pub enum LabelError {
         reason: String,
     },
     /// The model failed on a batch.
-    #[error("model inference failed on clip {set}/{id} at transition {first_transition}")]
+    #[error(
+        "model inference failed on clip {set}/{id} at model-time transition {first_transition}"
+    )]
     Model {
         /// Set.
         set: String,
         /// Clip id.
         id: String,
-        /// First transition of the batch.
+        /// First model-time transition of the batch (the decode transition
+        /// when the clip is not resampled).
         first_transition: usize,
         /// The cause.
         #[source]
@@ -173,6 +188,8 @@ pub fn run_stage(
     ctx: &crate::runner::StageContext<'_>,
 ) -> Result<crate::store::StageManifest, LabelError> {
     let fit = load_fit(&ctx.run_dir)?;
+    // The same view the fit stage trained and evaluated on.
+    let view = crate::align::AlignedRun::open_or_passthrough(&ctx.run_dir, &ctx.spec.actions)?;
     let job = LabelJob {
         run_dir: &ctx.run_dir,
         label_dir: &ctx.stage_dir,
@@ -185,8 +202,7 @@ pub fn run_stage(
     let include = |set: &str, id: &str| ctx.includes(set, id);
     let part: Option<stage::PartFilter<'_>> =
         ctx.partition.map(|_| &include as stage::PartFilter<'_>);
-    let summary =
-        stage::label_run_part(&job, &fit, &fitted::AlignColour::load(&ctx.run_dir), part)?;
+    let summary = stage::label_run_part(&job, &fit, &view, part)?;
     Ok(manifest_of(&summary))
 }
 

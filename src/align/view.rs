@@ -136,7 +136,9 @@ impl AlignedClip {
         Ok(clip)
     }
 
-    fn is_identity(&self) -> bool {
+    /// Whether the clip's model time is its decode time (speed factor 1): model frame `i` is
+    /// decoded frame `i` (colour-normalised) and [`Self::to_decode_grid`] returns its input.
+    pub fn is_identity(&self) -> bool {
         (self.info.speed_factor - 1.0).abs() < 1e-12
     }
 

@@ -168,6 +168,7 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
         action_weight: opts.action_weight,
         align_weight: if n_u > 0 { opts.align_weight } else { 0.0 },
         bandwidth: Bandwidth::Median,
+        head_loss: opts.head_loss,
     };
     let (w, h, a, k, heads) = (
         ds.width,

@@ -1,19 +1,15 @@
-//! The adapters between the label stage and its neighbours: the fit stage's
-//! [`crate::fit::FittedModel`] as a [`TransitionModel`], its recorded clip
-//! splits, and the align stage's per-clip colour normalisation as a
-//! [`FramePrep`] (decode-grid frames, normalised as the model saw them).
+//! The adapter between the label stage and the fit stage: the fit stage's
+//! [`crate::fit::FittedModel`] as a [`TransitionModel`] and its recorded clip
+//! splits. (Frames reach the model through the align stage's view, see
+//! [`super::stage`].)
 
-use std::borrow::Cow;
-use std::collections::BTreeMap;
 use std::path::Path;
 
 use super::LabelError;
 use super::model::{
-    FitOutputs, FramePrep, ModelFailure, Splits, Standardisation, TransitionBatch, TransitionModel,
+    FitOutputs, ModelFailure, Splits, Standardisation, TransitionBatch, TransitionModel,
 };
-use crate::align::color::LabTransform;
 use crate::fit::FittedModel;
-use crate::store::ClipRecord;
 
 /// The fit stage's semi-supervised model.
 pub struct FitModel {
@@ -81,39 +77,4 @@ pub fn load_fit_outputs(run_dir: &Path) -> Result<FitOutputs, LabelError> {
         model: Box::new(FitModel { model, st }),
         splits,
     })
-}
-
-/// The align stage's colour normalisation of each clip, applied to decode-grid frames.
-pub struct AlignColour {
-    maps: BTreeMap<(String, String), LabTransform>,
-}
-
-impl AlignColour {
-    /// Reads `RUN/align/` (no alignment output: no normalisation).
-    pub fn load(run_dir: &Path) -> Self {
-        let maps = crate::store::read_json::<crate::align::Alignment>(
-            &crate::align::view::alignment_path(run_dir),
-        )
-        .map(|a| {
-            a.clips
-                .into_iter()
-                .filter_map(|c| c.photometric.map(|p| ((c.set, c.id), p)))
-                .collect()
-        })
-        .unwrap_or_default();
-        Self { maps }
-    }
-}
-
-impl FramePrep for AlignColour {
-    fn prepare<'a>(&self, clip: &ClipRecord, _k: usize, rgb: &'a [u8]) -> Cow<'a, [u8]> {
-        match self.maps.get(&(clip.set.clone(), clip.id.clone())) {
-            Some(map) => {
-                let mut v = rgb.to_vec();
-                map.apply(&mut v);
-                Cow::Owned(v)
-            }
-            None => Cow::Borrowed(rgb),
-        }
-    }
 }

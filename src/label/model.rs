@@ -1,17 +1,13 @@
-//! What the label stage needs from the fit stage, as a small trait, plus the
-//! hook through which the align stage's frame preparation reaches the model.
+//! What the label stage needs from the fit stage, as a small trait.
 //!
 //! A [`TransitionModel`] maps a batch of frame pairs `(frame t, frame t+1)`
 //! to, per transition, the posterior mean of the latent action and each
 //! ensemble head's `(mean, log-variance)` in standardised action units
 //! (`(a - mean) / std` with the [`Standardisation`] saved by fit).
 
-use std::borrow::Cow;
 use std::collections::BTreeMap;
 
 use serde::{Deserialize, Serialize};
-
-use crate::store::ClipRecord;
 
 /// The per-dimension standardisation the fit stage applied to actions.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -46,7 +42,8 @@ pub trait TransitionModel: Send + Sync {
     fn heads(&self) -> usize;
     /// The action standardisation (also gives the action dimensions).
     fn standardisation(&self) -> &Standardisation;
-    /// Infers a batch of `(frame t, frame t+1)` RGB pairs at the decode size.
+    /// Infers a batch of `(frame t, frame t+1)` RGB pairs at the decode size
+    /// (model-time frames of the align stage's view).
     fn infer(&self, pairs: &[(&[u8], &[u8])]) -> Result<TransitionBatch, ModelFailure>;
 }
 
@@ -61,20 +58,4 @@ pub struct FitOutputs {
     pub model: Box<dyn TransitionModel>,
     /// The clip splits.
     pub splits: Splits,
-}
-
-/// How the align stage's frame preparation (e.g. photometric normalisation)
-/// reaches the model. Rows stay on the decode grid whatever this does.
-pub trait FramePrep: Sync {
-    /// The model input for frame `k` of `clip` (decoded bytes `rgb`).
-    fn prepare<'a>(&self, clip: &ClipRecord, k: usize, rgb: &'a [u8]) -> Cow<'a, [u8]>;
-}
-
-/// The identity preparation: the model sees the decoded frames.
-pub struct DecodedFrames;
-
-impl FramePrep for DecodedFrames {
-    fn prepare<'a>(&self, _clip: &ClipRecord, _k: usize, rgb: &'a [u8]) -> Cow<'a, [u8]> {
-        Cow::Borrowed(rgb)
-    }
 }

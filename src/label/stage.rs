@@ -1,22 +1,35 @@
 //! The label stage's two passes.
 //!
+//! The model runs where it was trained and where the fit stage evaluates it:
+//! on the align stage's model-time frame pairs ([`AlignedRun`]; resampled in
+//! time for a speed-normalised set, colour-normalised). Per-model-transition
+//! outputs are then mapped onto the clip's decode transitions, the rows of
+//! every output ([`decode_grid`]): `action_est` with the `[actions]` rules
+//! ([`AlignedClip::to_decode_grid`]), the uncalibrated std as variances
+//! ([`AlignedClip::to_decode_grid_std`]), the ensemble disagreement as a
+//! variance with the `mean` rule and the posterior mean with the `mean` rule
+//! per latent dimension. Calibration, confidence, ood and the nearest code
+//! are applied on the decode grid. A clip whose view is the identity (speed
+//! factor 1) skips the mapping.
+//!
 //! 1. Fit (skipped when `state.json` has the stage key): infer every
 //!    transition of the `calib` and `holdout` clips and a seeded sample of the
-//!    train transitions (every unlabelled clip is train); fit the per-dimension
-//!    conformal quantiles, the confidence map and the ood threshold on calib,
-//!    measure them on holdout, fit k-means on the sampled posterior means.
+//!    model-time train transitions (every unlabelled clip is train); fit the
+//!    per-dimension conformal quantiles, the confidence map and the ood
+//!    threshold on calib against the recorded decode-grid actions, measure them
+//!    on holdout, fit k-means on the sampled model-time posterior means.
 //! 2. Label: every clip in (set, id) order, resuming at the first clip whose
 //!    labels file is missing or was made under another key; then the codes
 //!    table and the calibration figures.
 
 use std::collections::{BTreeMap, BTreeSet};
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use serde::Serialize;
 
 use super::conformal::{self, ConformalQuantile};
 use super::kmeans::{KMeans, KMeansSettings};
-use super::model::{FitOutputs, FramePrep, Split, Standardisation, TransitionModel};
+use super::model::{FitOutputs, Split, Standardisation, TransitionModel};
 use super::output::{
     CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodeRow, CodesTable,
     DimCalibration, LabelState, STATE_FILE, decoded_clips,
@@ -24,8 +37,10 @@ use super::output::{
 use super::reliability::{self, Isotonic, METHOD};
 use super::stats::{normal_quantile, prob_within};
 use super::{LabelError, LabelOptions, RELIABILITY_BINS};
+use crate::actions::MapRule;
+use crate::align::{AlignError, AlignedClip, AlignedRun};
 use crate::model::Rng;
-use crate::store::{ClipRecord, FrameReader};
+use crate::store::ClipRecord;
 
 /// One transition's model outputs in action units.
 #[derive(Debug, Clone)]
@@ -78,7 +93,7 @@ pub struct LabelSummary {
     pub clips_reused: u64,
     /// Transitions in all.
     pub transitions: u64,
-    /// Transitions inferred now (including the fit pass).
+    /// Model-time transitions inferred now (including the fit pass).
     pub transitions_inferred: u64,
     /// Whether the fitted state was reused.
     pub state_reused: bool,
@@ -99,27 +114,33 @@ fn io_at(path: &Path) -> impl FnOnce(std::io::Error) -> LabelError + '_ {
     }
 }
 
-struct Clip {
+struct Clip<'v> {
     rec: ClipRecord,
     split: Split,
+    /// The clip as the model sees it.
+    view: &'v AlignedClip,
 }
 
-impl Clip {
+impl Clip<'_> {
+    /// Decode transitions (the rows of the clip's labels).
     fn transitions(&self) -> usize {
         self.rec.frames.saturating_sub(1) as usize
     }
-    fn frames_path(&self, run_dir: &Path) -> PathBuf {
-        ClipRecord::frames_path(&run_dir.join("decode"), &self.rec.set, &self.rec.id)
+    /// Model-time transitions (the pairs the model is run on).
+    fn model_transitions(&self) -> usize {
+        self.view.len().saturating_sub(1)
     }
 }
 
-/// Runs the label stage with the given fit outputs and frame preparation.
+/// Runs the label stage with the given fit outputs on the aligned view of the
+/// run (the one the fit stage trained on: open it with
+/// [`AlignedRun::open_or_passthrough`]).
 pub fn label_run(
     job: &LabelJob<'_>,
     fit: &FitOutputs,
-    prep: &dyn FramePrep,
+    view: &AlignedRun,
 ) -> Result<LabelSummary, LabelError> {
-    label_run_part(job, fit, prep, None)
+    label_run_part(job, fit, view, None)
 }
 
 /// Clip filter of one part of a partitioned run: `(set, id)` -> whether the part labels it.
@@ -131,14 +152,33 @@ pub type PartFilter<'a> = &'a (dyn Fn(&str, &str) -> bool + Sync);
 pub fn label_run_part(
     job: &LabelJob<'_>,
     fit: &FitOutputs,
-    prep: &dyn FramePrep,
+    view: &AlignedRun,
     part: Option<PartFilter<'_>>,
 ) -> Result<LabelSummary, LabelError> {
     let decode_dir = job.run_dir.join("decode");
     let records = decoded_clips(job.run_dir).map_err(io_at(&decode_dir))?;
-    let clips: Vec<Clip> = records
+    let views: BTreeMap<(&str, &str), &AlignedClip> = view
+        .clips()
+        .iter()
+        .map(|c| ((c.set(), c.id()), c))
+        .collect();
+    let clips: Vec<Clip<'_>> = records
         .into_iter()
         .map(|rec| {
+            let Some(&clip_view) = views.get(&(rec.set.as_str(), rec.id.as_str())) else {
+                return Err(LabelError::NotAligned {
+                    path: crate::align::view::alignment_path(job.run_dir),
+                    set: rec.set.clone(),
+                    id: rec.id.clone(),
+                });
+            };
+            if clip_view.decode_len() != rec.frames as usize {
+                return Err(LabelError::FrameCount {
+                    path: ClipRecord::frames_path(&decode_dir, &rec.set, &rec.id),
+                    record: rec.frames,
+                    store: clip_view.decode_len(),
+                });
+            }
             let split = if rec.labelled {
                 *fit.splits
                     .get(&(rec.set.clone(), rec.id.clone()))
@@ -146,18 +186,22 @@ pub fn label_run_part(
             } else {
                 Split::Train
             };
-            Clip { rec, split }
+            Ok(Clip {
+                rec,
+                split,
+                view: clip_view,
+            })
         })
-        .collect();
+        .collect::<Result<_, _>>()?;
     let pool = crate::util::thread_pool(job.threads);
-    pool.install(|| run_passes(job, fit.model.as_ref(), prep, &clips, part))
+    pool.install(|| run_passes(job, fit.model.as_ref(), view.rules(), &clips, part))
 }
 
 fn run_passes(
     job: &LabelJob<'_>,
     model: &dyn TransitionModel,
-    prep: &dyn FramePrep,
-    clips: &[Clip],
+    rules: &[MapRule],
+    clips: &[Clip<'_>],
     part: Option<PartFilter<'_>>,
 ) -> Result<LabelSummary, LabelError> {
     let started = std::time::Instant::now();
@@ -167,7 +211,7 @@ fn run_passes(
     let (state, state_reused) = match existing.filter(|s| s.key == job.key) {
         Some(s) => (s, true),
         None => {
-            let (s, n) = fit_state(job, model, prep, clips)?;
+            let (s, n) = fit_state(job, model, rules, clips)?;
             inferred += n;
             crate::store::write_json_atomic(&state_path, &s).map_err(io_at(&state_path))?;
             (s, false)
@@ -195,9 +239,8 @@ fn run_passes(
                 l
             }
             None => {
-                let all: Vec<usize> = (0..clip.transitions()).collect();
-                let raw = infer_clip(job, model, prep, clip, &all)?;
-                inferred += raw.len() as u64;
+                let (raw, n) = infer_decode(job, model, rules, clip)?;
+                inferred += n as u64;
                 let l = finish_clip(job, clip, &state, &raw);
                 crate::store::write_json_atomic(&path, &l).map_err(io_at(&path))?;
                 labelled_now += 1;
@@ -264,37 +307,109 @@ fn run_passes(
     })
 }
 
-/// Infers transitions `which` of `clip` in batches.
+/// Every transition of `clip` on the decode grid: inferred on the model-time
+/// pairs, then mapped back ([`decode_grid`]); the clip's frame pages are
+/// released. Also returns the number of model-time transitions inferred.
+fn infer_decode(
+    job: &LabelJob<'_>,
+    model: &dyn TransitionModel,
+    rules: &[MapRule],
+    clip: &Clip<'_>,
+) -> Result<(Vec<RawTransition>, usize), LabelError> {
+    let all: Vec<usize> = (0..clip.model_transitions()).collect();
+    let raw = infer_clip(job, model, clip, &all);
+    clip.view.release();
+    let raw = raw?;
+    let n = raw.len();
+    Ok((decode_grid(clip.view, rules, raw)?, n))
+}
+
+/// Maps one clip's per-model-transition outputs (`len() - 1` rows) onto its
+/// decode transitions (`decode_len() - 1` rows): estimates with the action
+/// `rules`, standard deviations as variances with the same rules, the
+/// disagreement as a variance with the `mean` rule, the posterior mean with
+/// the `mean` rule per latent dimension. The identity view returns `raw` as it is.
+pub fn decode_grid(
+    view: &AlignedClip,
+    rules: &[MapRule],
+    raw: Vec<RawTransition>,
+) -> Result<Vec<RawTransition>, AlignError> {
+    if view.is_identity() {
+        return Ok(raw);
+    }
+    let rows = |f: fn(&RawTransition) -> &[f64]| -> Vec<Vec<f32>> {
+        raw.iter()
+            .map(|r| f(r).iter().map(|v| *v as f32).collect())
+            .collect()
+    };
+    let est = view.to_decode_grid(&rows(|r| &r.est), rules)?;
+    let std = view.to_decode_grid_std(&rows(|r| &r.std), rules)?;
+    let spread: Vec<f64> = raw.iter().map(|r| r.disagreement).collect();
+    let disagreement = spread_to_decode_grid(view, &spread)?;
+    let k = raw.first().map_or(0, |r| r.latent.len());
+    let latent = view.to_decode_grid(&rows(|r| &r.latent), &vec![MapRule::Mean; k])?;
+    let f64s = |r: Vec<f32>| -> Vec<f64> { r.into_iter().map(f64::from).collect() };
+    Ok(est
+        .into_iter()
+        .zip(std)
+        .zip(disagreement)
+        .zip(latent)
+        .map(|(((est, std), disagreement), latent)| RawTransition {
+            est: f64s(est),
+            std: f64s(std),
+            disagreement,
+            latent: f64s(latent),
+        })
+        .collect())
+}
+
+/// Maps a per-model-transition spread (a standard deviation, one value per
+/// transition) onto the decode grid as a variance with the `mean` rule.
+fn spread_to_decode_grid(view: &AlignedClip, spread: &[f64]) -> Result<Vec<f64>, AlignError> {
+    let rows: Vec<Vec<f32>> = spread.iter().map(|s| vec![*s as f32]).collect();
+    Ok(view
+        .to_decode_grid_std(&rows, &[MapRule::Mean])?
+        .into_iter()
+        .map(|r| f64::from(r[0]))
+        .collect())
+}
+
+/// Model-time frame `i` of `view` (resampled, colour-normalised).
+fn model_frame(view: &AlignedClip, i: usize) -> Result<Vec<u8>, AlignError> {
+    let mut buf = vec![0u8; view.frame_bytes()];
+    view.frame(i, &mut buf)?;
+    Ok(buf)
+}
+
+/// Infers model-time transitions `which` (sorted) of `clip` in batches.
 fn infer_clip(
     job: &LabelJob<'_>,
     model: &dyn TransitionModel,
-    prep: &dyn FramePrep,
-    clip: &Clip,
+    clip: &Clip<'_>,
     which: &[usize],
 ) -> Result<Vec<RawTransition>, LabelError> {
     if which.is_empty() {
         return Ok(Vec::new());
     }
-    let frames = FrameReader::open(&clip.frames_path(job.run_dir))?;
-    if frames.len() != clip.rec.frames as usize {
-        return Err(LabelError::FrameCount {
-            path: frames.path().to_path_buf(),
-            record: clip.rec.frames,
-            store: frames.len(),
-        });
-    }
     let mut out = Vec::with_capacity(which.len());
     for chunk in which.chunks(job.opts.batch.max(1) as usize) {
-        let prepared: Vec<_> = chunk
+        // Frames t and t + 1 of each transition; a frame that ends one
+        // transition and starts the next is read once.
+        let mut frames: Vec<Vec<u8>> = Vec::with_capacity(chunk.len() + 1);
+        let mut at = Vec::with_capacity(chunk.len());
+        let mut last = None;
+        for &t in chunk {
+            if last != Some(t) {
+                frames.push(model_frame(clip.view, t)?);
+            }
+            frames.push(model_frame(clip.view, t + 1)?);
+            last = Some(t + 1);
+            at.push(frames.len() - 2);
+        }
+        let pairs: Vec<(&[u8], &[u8])> = at
             .iter()
-            .map(|&t| {
-                (
-                    prep.prepare(&clip.rec, t, frames.frame(t)),
-                    prep.prepare(&clip.rec, t + 1, frames.frame(t + 1)),
-                )
-            })
+            .map(|&j| (&frames[j][..], &frames[j + 1][..]))
             .collect();
-        let pairs: Vec<(&[u8], &[u8])> = prepared.iter().map(|(x, y)| (&x[..], &y[..])).collect();
         let batch = model.infer(&pairs).map_err(|source| LabelError::Model {
             set: clip.rec.set.clone(),
             id: clip.rec.id.clone(),
@@ -435,7 +550,7 @@ fn finish_clip(
     l
 }
 
-fn actions_of<'c>(clip: &'c Clip) -> Result<&'c [Vec<f32>], LabelError> {
+fn actions_of<'c>(clip: &'c Clip<'_>) -> Result<&'c [Vec<f32>], LabelError> {
     match &clip.rec.actions {
         Some(a) if a.len() == clip.transitions() => Ok(a),
         other => Err(LabelError::MissingActions {
@@ -447,39 +562,44 @@ fn actions_of<'c>(clip: &'c Clip) -> Result<&'c [Vec<f32>], LabelError> {
     }
 }
 
-/// Raw outputs and recorded actions of every transition of `split` clips.
+/// Decode-grid outputs, each with the recorded action of its transition.
+type Scored = Vec<(RawTransition, Vec<f64>)>;
+
+/// Decode-grid outputs and recorded actions of every transition of `split`
+/// clips, and the number of model-time transitions inferred.
 fn labelled_split(
     job: &LabelJob<'_>,
     model: &dyn TransitionModel,
-    prep: &dyn FramePrep,
-    clips: &[Clip],
+    rules: &[MapRule],
+    clips: &[Clip<'_>],
     split: Split,
-) -> Result<Vec<(RawTransition, Vec<f64>)>, LabelError> {
+) -> Result<(Scored, u64), LabelError> {
     let mut out = Vec::new();
+    let mut inferred = 0u64;
     for clip in clips.iter().filter(|c| c.rec.labelled && c.split == split) {
         let actions = actions_of(clip)?;
-        let all: Vec<usize> = (0..clip.transitions()).collect();
-        let raw = infer_clip(job, model, prep, clip, &all)?;
+        let (raw, n) = infer_decode(job, model, rules, clip)?;
+        inferred += n as u64;
         out.extend(
             raw.into_iter()
                 .zip(actions)
                 .map(|(r, a)| (r, a.iter().map(|v| *v as f64).collect())),
         );
     }
-    Ok(out)
+    Ok((out, inferred))
 }
 
 /// Fits quantiles, the confidence map, the ood threshold and the codes.
 fn fit_state(
     job: &LabelJob<'_>,
     model: &dyn TransitionModel,
-    prep: &dyn FramePrep,
-    clips: &[Clip],
+    rules: &[MapRule],
+    clips: &[Clip<'_>],
 ) -> Result<(LabelState, u64), LabelError> {
     let opts = job.opts;
     let st: Standardisation = model.standardisation().clone();
     let a = st.dims.len();
-    let calib = labelled_split(job, model, prep, clips, Split::Calib)?;
+    let (calib, calib_inferred) = labelled_split(job, model, rules, clips, Split::Calib)?;
     let needed = conformal::min_points(opts.alpha);
     if calib.len() < needed {
         return Err(LabelError::TooFewCalib {
@@ -488,7 +608,7 @@ fn fit_state(
             alpha: opts.alpha,
         });
     }
-    let holdout = labelled_split(job, model, prep, clips, Split::Holdout)?;
+    let (holdout, holdout_inferred) = labelled_split(job, model, rules, clips, Split::Holdout)?;
     let z = normal_quantile(1.0 - opts.alpha / 2.0);
     let quantiles: Vec<ConformalQuantile> = (0..a)
         .map(|d| {
@@ -581,15 +701,15 @@ fn fit_state(
         cal.holdout_reliability_raw = reliability::reliability(&raw_conf, &hits, RELIABILITY_BINS);
         cal.holdout_ood_rate = Some(fin.iter().filter(|f| f.ood).count() as f64 / n);
     }
-    // Codes on a seeded sample of train transitions.
-    let train: Vec<&Clip> = clips.iter().filter(|c| c.split == Split::Train).collect();
-    let total: u64 = train.iter().map(|c| c.transitions() as u64).sum();
+    // Codes on a seeded sample of the model-time train transitions.
+    let train: Vec<&Clip<'_>> = clips.iter().filter(|c| c.split == Split::Train).collect();
+    let total: u64 = train.iter().map(|c| c.model_transitions() as u64).sum();
     let sample = sample_indices(total, opts.kmeans_sample as u64, job.seed);
     let mut latents = Vec::with_capacity(sample.len() * model.latent_dims());
     let mut offset = 0u64;
     let mut it = sample.iter().peekable();
     for clip in &train {
-        let n = clip.transitions() as u64;
+        let n = clip.model_transitions() as u64;
         let mut which = Vec::new();
         while let Some(&&g) = it.peek() {
             if g >= offset + n {
@@ -599,7 +719,9 @@ fn fit_state(
             it.next();
         }
         offset += n;
-        for r in infer_clip(job, model, prep, clip, &which)? {
+        let raw = infer_clip(job, model, clip, &which);
+        clip.view.release();
+        for r in raw? {
             latents.extend(r.latent);
         }
     }
@@ -613,7 +735,7 @@ fn fit_state(
             seed: job.seed,
         },
     )?;
-    let inferred = (calib.len() + holdout.len() + sample.len()) as u64;
+    let inferred = calib_inferred + holdout_inferred + sample.len() as u64;
     Ok((
         LabelState {
             key: job.key.to_string(),

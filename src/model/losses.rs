@@ -57,6 +57,43 @@ pub fn kl_std_normal(mu: &Tensor, logvar: &Tensor) -> Result<Tensor> {
     per.sum(D::Minus1)? * 0.5
 }
 
+/// How the action heads' Gaussian likelihood is trained.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum HeadLoss {
+    /// Plain Gaussian NLL: mean and variance gradients both reach the
+    /// posterior. A dimension the heads find hard gets a large variance, which
+    /// shrinks its mean gradient (the pitfall Seitzer et al. 2022 describe);
+    /// on the demo the gripper state was never learnt this way.
+    Nll,
+    /// The mean is fitted by squared error; the log-variance by the Gaussian
+    /// NLL with the mean detached, computed from detached posterior means, so
+    /// the variance never shapes the posterior (after Stirn et al. 2023,
+    /// "Faithful heteroscedastic regression with neural networks"; from
+    /// memory). The head's own hidden layer serves both outputs.
+    Faithful,
+}
+
+/// Per-element action-head loss `[n, A]` under `kind` (see [`HeadLoss`]).
+///
+/// `mean`, `logvar`: the head's outputs on the posterior means; `logvar_detached`:
+/// its log-variance on the detached posterior means (used by `Faithful` only).
+pub fn head_loss(
+    kind: HeadLoss,
+    a: &Tensor,
+    mean: &Tensor,
+    logvar: &Tensor,
+    logvar_detached: &Tensor,
+) -> Result<Tensor> {
+    match kind {
+        HeadLoss::Nll => gaussian_nll(a, mean, logvar),
+        HeadLoss::Faithful => {
+            let sq = ((a - mean)?.sqr()? * 0.5)?;
+            sq + gaussian_nll(a, &mean.detach(), logvar_detached)?
+        }
+    }
+}
+
 /// How the decoder's single shared variance is obtained.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 pub enum SharedVariance {

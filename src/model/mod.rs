@@ -25,7 +25,7 @@ pub mod optim;
 pub mod rng;
 
 pub use init::SeededInit;
-pub use losses::{Bandwidth, SharedVariance};
+pub use losses::{Bandwidth, HeadLoss, SharedVariance};
 pub use net::{Batch, Inference, LossOptions, LossParts, Net, frames_to_tensor};
 pub use optim::{AdamW, AdamWParams};
 pub use rng::Rng;
@@ -85,6 +85,16 @@ pub struct Config {
     /// [`net`]); `false` in files written before the option existed.
     #[serde(default)]
     pub global_max: bool,
+    /// Feed the posterior's flat features the deepest map as well as the
+    /// global maxima (see [`net`]); `true` in files written before the option
+    /// existed. `false` makes the posterior blind to where things are (it
+    /// needs `global_max`).
+    #[serde(default = "yes")]
+    pub posterior_flat: bool,
+}
+
+fn yes() -> bool {
+    true
 }
 
 impl Default for Config {
@@ -103,6 +113,7 @@ impl Default for Config {
             recon_level: DEFAULT_RECON_LEVEL,
             variance: SharedVariance::ClosedForm,
             global_max: true,
+            posterior_flat: true,
         }
     }
 }
@@ -144,6 +155,9 @@ pub enum ModelError {
         /// Stem steps.
         stem: usize,
     },
+    /// The posterior would have no features.
+    #[error("a posterior without the deepest map (posterior_flat = false) needs global_max")]
+    NoPosteriorFeatures,
     /// A candle error while building or running the network.
     #[error(transparent)]
     Candle(#[from] candle_core::Error),
@@ -184,6 +198,9 @@ impl Config {
                 height: self.height,
                 factor,
             });
+        }
+        if !self.posterior_flat && !self.global_max {
+            return Err(ModelError::NoPosteriorFeatures);
         }
         if self.recon_level > self.stem {
             return Err(ModelError::ReconLevel {

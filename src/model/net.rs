@@ -69,7 +69,8 @@ use candle_nn::VarBuilder;
 
 use super::layers::{Dense, avg_pool2, depth_to_space, space_to_depth};
 use super::losses::{
-    Bandwidth, SharedVariance, gaussian_nll, kl_std_normal, mmd2_unbiased, shared_variance_nll,
+    Bandwidth, HeadLoss, SharedVariance, head_loss, kl_std_normal, mmd2_unbiased,
+    shared_variance_nll,
 };
 use super::{Config, ModelError};
 
@@ -91,10 +92,13 @@ struct Pyramid {
     fc: Dense,
     stem: usize,
     global_max: bool,
+    flat: bool,
 }
 
 impl Pyramid {
-    fn new(cfg: &Config, in_channels: usize, vb: VarBuilder) -> Result<Self> {
+    /// `flat`: the flat features include the deepest map (else only the
+    /// global maxima, which `cfg.global_max` must then turn on).
+    fn new(cfg: &Config, in_channels: usize, flat: bool, vb: VarBuilder) -> Result<Self> {
         let mut levels = Vec::with_capacity(cfg.levels);
         let mut c = in_channels << (2 * cfg.stem);
         for i in 0..cfg.levels {
@@ -108,16 +112,18 @@ impl Pyramid {
         } else {
             0
         };
-        let fc = Dense::new(
-            hl * wl * cfg.widths[cfg.levels - 1] + pooled,
-            cfg.hidden,
-            vb.pp("fc"),
-        )?;
+        let deepest = if flat {
+            hl * wl * cfg.widths[cfg.levels - 1]
+        } else {
+            0
+        };
+        let fc = Dense::new(deepest + pooled, cfg.hidden, vb.pp("fc"))?;
         Ok(Self {
             levels,
             fc,
             stem: cfg.stem,
             global_max: cfg.global_max,
+            flat,
         })
     }
 
@@ -136,16 +142,18 @@ impl Pyramid {
             feats.push(f.clone());
         }
         let b = x.dim(0)?;
-        let flat = f.reshape((b, ()))?;
         let flat = if self.global_max {
-            let mut parts = vec![flat];
+            let mut parts = Vec::with_capacity(feats.len() + 1);
+            if self.flat {
+                parts.push(f.reshape((b, ()))?);
+            }
             for fj in &feats {
                 let c = fj.dim(3)?;
                 parts.push(fj.reshape((b, (), c))?.max(1)?);
             }
             Tensor::cat(&parts, 1)?
         } else {
-            flat
+            f.reshape((b, ()))?
         };
         let h = self.fc.forward(&flat)?.relu()?;
         Ok((feats, h))
@@ -249,6 +257,8 @@ pub struct LossOptions {
     pub align_weight: f64,
     /// MMD kernel bandwidth.
     pub bandwidth: Bandwidth,
+    /// How the action heads are trained.
+    pub head_loss: HeadLoss,
 }
 
 impl Default for LossOptions {
@@ -257,6 +267,7 @@ impl Default for LossOptions {
             action_weight: super::DEFAULT_ACTION_WEIGHT,
             align_weight: super::DEFAULT_ALIGN_WEIGHT,
             bandwidth: Bandwidth::Median,
+            head_loss: HeadLoss::Faithful,
         }
     }
 }
@@ -285,11 +296,11 @@ impl Net {
     pub fn new(cfg: &Config, vb: VarBuilder) -> std::result::Result<Self, ModelError> {
         cfg.validate()?;
         let encoder = FrameEncoder {
-            pyramid: Pyramid::new(cfg, 3, vb.pp("encoder"))?,
+            pyramid: Pyramid::new(cfg, 3, true, vb.pp("encoder"))?,
         };
         let pvb = vb.pp("posterior");
         let posterior = Posterior {
-            pyramid: Pyramid::new(cfg, 9, pvb.pp("pyramid"))?,
+            pyramid: Pyramid::new(cfg, 9, cfg.posterior_flat, pvb.pp("pyramid"))?,
             mu: Dense::new(cfg.hidden, cfg.latent, pvb.pp("mu"))?,
             logvar: Dense::new(cfg.hidden, cfg.latent, pvb.pp("logvar"))?,
         };
@@ -436,10 +447,15 @@ impl Net {
                 // Heads read the posterior mean, as at inference (see the
                 // module docs for why not the sampled latent).
                 let mu_l = mu.narrow(0, 0, n)?;
+                let mu_d = mu_l.detach();
                 let mut sum = zero()?;
                 for (m, head) in self.heads.iter().enumerate() {
                     let (mean, hlv) = head.forward(&mu_l)?;
-                    let nll = gaussian_nll(a, &mean, &hlv)?.sum(1)?; // [n]
+                    let hlv_d = match opts.head_loss {
+                        HeadLoss::Faithful => head.forward(&mu_d)?.1,
+                        HeadLoss::Nll => hlv.clone(),
+                    };
+                    let nll = head_loss(opts.head_loss, a, &mean, &hlv, &hlv_d)?.sum(1)?; // [n]
                     let nll = match &batch.boot {
                         Some(w) => (nll * w.get(m)?)?,
                         None => nll,

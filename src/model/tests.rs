@@ -5,8 +5,8 @@ use candle_core::{DType, Device, Tensor, Var};
 use candle_nn::VarMap;
 
 use super::losses::{
-    Bandwidth, gaussian_nll, kl_diag_gaussians, kl_std_normal, median_bandwidth, mmd2_unbiased,
-    shared_variance_nll,
+    Bandwidth, gaussian_nll, head_loss, kl_diag_gaussians, kl_std_normal, median_bandwidth,
+    mmd2_unbiased, shared_variance_nll,
 };
 use super::*;
 
@@ -172,6 +172,62 @@ print(" ".join(repr(float(t)) for t in -stats.norm.logpdf(v[0], v[1], np.exp(0.5
     }
 }
 
+#[test]
+fn faithful_head_loss_gives_the_mean_a_squared_error_gradient() {
+    // Closed forms (textbook calculus of the Gaussian NLL
+    // 0.5 (ln 2pi + lv + (a - m)^2 e^-lv)): d/dm = (m - a) e^-lv and
+    // d/dlv = 0.5 (1 - (a - m)^2 e^-lv). The faithful loss (Stirn et al. 2023)
+    // must give the mean the squared-error gradient m - a whatever the
+    // variance, no gradient to the undetached log-variance, and the NLL's
+    // log-variance gradient to the detached one; its value is
+    // 0.5 (a - m)^2 + NLL (checked against scipy in the test above).
+    let a = [0.5, -1.0, 2.0];
+    let m0 = [0.0, 0.5, -1.0];
+    let lv0 = [3.0, -2.0, 0.7];
+    let var = |v: &[f64]| Var::from_tensor(&t64(v, &[3])).unwrap();
+    let (m, lv, lvd) = (var(&m0), var(&lv0), var(&lv0));
+    for kind in [HeadLoss::Faithful, HeadLoss::Nll] {
+        let loss = head_loss(kind, &t64(&a, &[3]), &m, &lv, &lvd).unwrap();
+        let g = loss.sum_all().unwrap().backward().unwrap();
+        let grad = |v: &Var| -> Vec<f64> {
+            g.get(v)
+                .map(|t| t.to_vec1().unwrap())
+                .unwrap_or_else(|| vec![0.0; 3])
+        };
+        let vals: Vec<f64> = loss.to_vec1().unwrap();
+        for i in 0..3 {
+            let r = a[i] - m0[i];
+            let nll = 0.5 * (losses::LN_2PI + lv0[i] + r * r * (-lv0[i]).exp());
+            let dlv = 0.5 * (1.0 - r * r * (-lv0[i]).exp());
+            let (want_val, want_m, want_lv, want_lvd) = match kind {
+                HeadLoss::Faithful => (0.5 * r * r + nll, -r, 0.0, dlv),
+                HeadLoss::Nll => (nll, -r * (-lv0[i]).exp(), dlv, 0.0),
+            };
+            let close = |x: f64, y: f64| (x - y).abs() < 1e-12 * y.abs().max(1.0);
+            assert!(
+                close(vals[i], want_val),
+                "{kind:?} value {} vs {want_val}",
+                vals[i]
+            );
+            assert!(
+                close(grad(&m)[i], want_m),
+                "{kind:?} d/dm {} vs {want_m}",
+                grad(&m)[i]
+            );
+            assert!(
+                close(grad(&lv)[i], want_lv),
+                "{kind:?} d/dlv {}",
+                grad(&lv)[i]
+            );
+            assert!(
+                close(grad(&lvd)[i], want_lvd),
+                "{kind:?} d/dlv_d {}",
+                grad(&lvd)[i]
+            );
+        }
+    }
+}
+
 fn tiny_config(variance: SharedVariance) -> Config {
     Config {
         width: 8,
@@ -187,6 +243,7 @@ fn tiny_config(variance: SharedVariance) -> Config {
         recon_level: 1,
         variance,
         global_max: true,
+        posterior_flat: true,
     }
 }
 
@@ -384,6 +441,9 @@ fn loss_gradient_matches_finite_differences() {
         action_weight: 2.0,
         align_weight: 3.0,
         bandwidth: Bandwidth::Fixed(0.7),
+        // The faithful head loss detaches parts of its graph on purpose, so
+        // its backward pass is not the derivative of its value.
+        head_loss: HeadLoss::Nll,
     };
     let loss = |net: &Net| scalar(&net.loss(&batch, &opts).unwrap().total);
     let grads = net.loss(&batch, &opts).unwrap().total.backward().unwrap();

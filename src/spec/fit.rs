@@ -15,6 +15,8 @@
 //! action-weight = 100.0       # weight of the action NLL
 //! align-weight = 100.0        # weight of the MMD^2 alignment penalty (0 = off)
 //! shared-variance = "closed-form"   # or "learned"
+//! head-loss = "faithful"      # or "nll" (plain Gaussian NLL)
+//! posterior-positions = false # posterior also sees the deepest map, not only global maxima
 //! checkpoint-every = 100      # steps between checkpoints
 //! calib-fraction = 0.2        # labelled clips for calibration
 //! holdout-fraction = 0.2      # labelled clips for holdout evaluation
@@ -30,7 +32,7 @@ use toml::Spanned;
 
 use super::error::Problems;
 use crate::fit::FitOptions;
-use crate::model::SharedVariance;
+use crate::model::{HeadLoss, SharedVariance};
 
 /// A number written as an integer or a float.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -68,6 +70,16 @@ pub enum RawSharedVariance {
     Learned,
 }
 
+/// `head-loss` values.
+#[derive(Debug, Clone, Copy, PartialEq, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum RawHeadLoss {
+    /// Squared error for the mean, NLL for the detached variance.
+    Faithful,
+    /// Plain Gaussian NLL.
+    Nll,
+}
+
 /// `[fit]` as written in the spec.
 #[derive(Debug, Deserialize, Default)]
 #[serde(deny_unknown_fields, rename_all = "kebab-case")]
@@ -96,6 +108,10 @@ pub struct RawFit {
     pub align_weight: Option<Spanned<Number>>,
     /// Shared variance mode.
     pub shared_variance: Option<RawSharedVariance>,
+    /// Action-head loss.
+    pub head_loss: Option<RawHeadLoss>,
+    /// Posterior sees the deepest map too.
+    pub posterior_positions: Option<bool>,
     /// Checkpoint interval.
     pub checkpoint_every: Option<Spanned<i64>>,
     /// Calibration fraction.
@@ -167,6 +183,8 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
         action_weight,
         align_weight,
         shared_variance,
+        head_loss,
+        posterior_positions,
         checkpoint_every,
         calib_fraction,
         holdout_fraction,
@@ -245,6 +263,15 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
             RawSharedVariance::ClosedForm => SharedVariance::ClosedForm,
             RawSharedVariance::Learned => SharedVariance::Learned,
         };
+    }
+    if let Some(v) = head_loss {
+        o.head_loss = match v {
+            RawHeadLoss::Faithful => HeadLoss::Faithful,
+            RawHeadLoss::Nll => HeadLoss::Nll,
+        };
+    }
+    if let Some(v) = posterior_positions {
+        o.posterior_positions = *v;
     }
     if let Some(v) = int(
         "checkpoint-every",

@@ -10,6 +10,8 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 
+use actuary::actions::MapRule;
+use actuary::align::AlignedRun;
 use actuary::label::conformal;
 use actuary::label::kmeans::{KMeans, KMeansSettings};
 use actuary::label::{
@@ -17,6 +19,7 @@ use actuary::label::{
     TransitionModel, label_run,
 };
 use actuary::model::Rng;
+use actuary::spec::{ActionsOptions, Offset};
 use actuary::store::{ClipRecord, FrameWriter, SourceInfo, write_json_atomic};
 
 use crate::util;
@@ -200,8 +203,27 @@ fn label(
         seed: 7,
         threads,
     };
-    label_run(&job, &fit, &actuary::label::model::DecodedFrames)
-        .unwrap_or_else(|e| panic!("label: {e}"))
+    label_run(&job, &fit, &view(run)).unwrap_or_else(|e| panic!("label: {e}"))
+}
+
+/// `[actions]` of the fake run: `dx` a delta (`sum`), `grip` a level (`mean`).
+pub fn actions_opts() -> ActionsOptions {
+    let mut map = BTreeMap::new();
+    map.insert("dx".to_string(), MapRule::Sum);
+    map.insert("grip".to_string(), MapRule::Mean);
+    ActionsOptions {
+        map,
+        default_rule: MapRule::Sum,
+        offset: Offset::Seconds(0.0),
+        offset_window_s: 1.0,
+        offset_min_correlation: 0.3,
+    }
+}
+
+/// The aligned view of a fake run, opened as the label stage's `run_stage`
+/// opens it (`RUN/align/alignment.json` when written, else the identity view).
+pub fn view(run: &Path) -> AlignedRun {
+    AlignedRun::open_or_passthrough(run, &actions_opts()).unwrap_or_else(|e| panic!("view: {e}"))
 }
 
 /// Points for the k-means comparison: 5 Gaussian blobs of different spreads
@@ -405,4 +427,163 @@ fn fake_decode_splits(robot: usize) -> BTreeMap<(String, String), Split> {
             (("robot".to_string(), format!("pick-{i:02}")), split)
         })
         .collect()
+}
+
+/// Writes `RUN/align/alignment.json` for the fake run: `human` resampled by
+/// `factor` (model frames per decode frame), `robot` left as decoded, no
+/// colour normalisation; rules as [`actions_opts`].
+fn write_alignment(run: &Path, factor: f64) {
+    let records = actuary::align::view::list_decoded(run).unwrap();
+    let alignment = actuary::align::Alignment {
+        version: actuary::align::view::ALIGNMENT_VERSION,
+        fps: 10.0,
+        width: W,
+        height: H,
+        action_dims: DIMS.iter().map(|s| s.to_string()).collect(),
+        rules: vec![MapRule::Sum, MapRule::Mean],
+        resample: actuary::align::Resample::Blend,
+        copy_frames: false,
+        clips: records
+            .iter()
+            .map(|r| actuary::align::ClipAlignment {
+                set: r.set.clone(),
+                id: r.id.clone(),
+                labelled: r.labelled,
+                frames: r.frames,
+                speed_factor: if r.labelled { 1.0 } else { factor },
+                motion_rate: None,
+                photometric: None,
+                offset: None,
+                actions: None,
+            })
+            .collect(),
+    };
+    write_json_atomic(&actuary::align::view::alignment_path(run), &alignment).unwrap();
+}
+
+/// Rewrites the `human` clips' frames with even bytes, so that a half-way blend
+/// of two frames is an exact integer (no rounding convention involved).
+fn make_human_bytes_even(run: &Path) {
+    let decode = run.join("decode");
+    for i in 0..3 {
+        let path = ClipRecord::frames_path(&decode, "human", &format!("day2/reach-{i}"));
+        let frames: Vec<Vec<u8>> = {
+            let r = actuary::store::FrameReader::open(&path).unwrap();
+            (0..r.len())
+                .map(|k| r.frame(k).iter().map(|b| b & !1).collect())
+                .collect()
+        };
+        let mut w = FrameWriter::create(&path, W, H).unwrap();
+        for f in &frames {
+            w.push(f).unwrap();
+        }
+        w.finish().unwrap();
+    }
+}
+
+#[test]
+fn label_stage_infers_speed_resampled_clips_in_model_time() {
+    // Reference: a worked example by hand of the documented align view and
+    // interval rules (src/align.rs, src/actions/mapping.rs): at speed factor 2
+    // model frame i sits at decode position i / 2, so model frame 2k is
+    // decoded frame k and model frame 2k + 1 the half-way blend of frames k
+    // and k + 1; decode transition k = [k, k + 1) / fps is covered exactly by
+    // model transitions 2k and 2k + 1, so `sum` adds their two estimates and
+    // `mean` averages them. The uncalibrated variance of a sum of independent
+    // errors is the sum of their variances (textbook), and the `mean` rule
+    // averages variances (`to_decode_grid_std`). The fake model reads its
+    // estimate and latent off frame t of each pair. Labelling on decode-grid
+    // pairs (the old behaviour) gives est(frame k) for both dimensions and fails.
+    let dir = tempfile::tempdir().unwrap();
+    let run = dir.path();
+    let splits = fake_decode(run, 24, 3);
+    make_human_bytes_even(run);
+    write_alignment(run, 2.0);
+    let summary = label(run, splits, 2);
+    let label_dir = run.join("label");
+    assert_eq!(
+        summary.transitions,
+        24 * 59 + 3 * 39,
+        "rows stay on the decode grid"
+    );
+    let codes: actuary::label::CodesTable =
+        actuary::store::read_json(&label_dir.join("codes.json")).unwrap();
+    let est = |px: &[f64], d: usize| ((px[d] - 128.0) / 64.0) * STD[d] + MEAN[d];
+    let robot = ClipLabels::read(&label_dir, "robot", "pick-00").unwrap();
+    let decode = run.join("decode");
+    let frames =
+        actuary::store::FrameReader::open(&ClipRecord::frames_path(&decode, "robot", "pick-00"))
+            .unwrap();
+    // Identity view: the estimate of decode transition k is est(frame k).
+    for k in 0..59 {
+        let px: Vec<f64> = frames.frame(k)[..2].iter().map(|b| *b as f64).collect();
+        for d in 0..2 {
+            let want = est(&px, d);
+            let got = robot.action_est[k][d] as f64;
+            assert!(
+                (got - want).abs() < 1e-4,
+                "robot t {k} dim {d}: {got} vs {want}"
+            );
+        }
+    }
+    for i in 0..3 {
+        let id = format!("day2/reach-{i}");
+        let l = ClipLabels::read(&label_dir, "human", &id).unwrap();
+        assert_eq!(l.action_est.len(), 39);
+        let frames =
+            actuary::store::FrameReader::open(&ClipRecord::frames_path(&decode, "human", &id))
+                .unwrap();
+        for k in 0..39 {
+            let a: Vec<f64> = frames.frame(k)[..2].iter().map(|b| *b as f64).collect();
+            let b: Vec<f64> = frames.frame(k + 1)[..2].iter().map(|b| *b as f64).collect();
+            let mid: Vec<f64> = a.iter().zip(&b).map(|(x, y)| (x + y) / 2.0).collect();
+            let want = [est(&a, 0) + est(&mid, 0), (est(&a, 1) + est(&mid, 1)) / 2.0];
+            for (d, want) in want.iter().enumerate() {
+                let got = l.action_est[k][d] as f64;
+                assert!(
+                    (got - want).abs() < 1e-4,
+                    "{id} t {k} dim {d}: action_est {got}, model time mapped back {want}"
+                );
+            }
+            // The fake model's stated std is the same on every transition:
+            // dx (sum of two) sqrt(2) times the robot's, grip (mean) equal.
+            let (sr, sh) = (&robot.action_std[0], &l.action_std[k]);
+            let ratio = [std::f64::consts::SQRT_2, 1.0];
+            for d in 0..2 {
+                let want = sr[d] as f64 * ratio[d];
+                assert!(
+                    (sh[d] as f64 - want).abs() < 1e-5 * want,
+                    "{id} t {k} dim {d}: action_std {} vs {want}",
+                    sh[d]
+                );
+            }
+            // Disagreement (constant spread) is unchanged by the mean rule.
+            assert!((l.disagreement[k] - robot.disagreement[0]).abs() < 1e-6);
+            // The code is the centroid nearest the mean of the two model-time latents.
+            let latent: Vec<f64> = (0..2)
+                .map(|d| ((a[d] - 128.0) / 64.0 + (mid[d] - 128.0) / 64.0) / 2.0)
+                .collect();
+            let dist =
+                |c: &[f64]| -> f64 { c.iter().zip(&latent).map(|(x, y)| (x - y).powi(2)).sum() };
+            let best = codes
+                .codes
+                .iter()
+                .map(|c| dist(&c.centroid))
+                .fold(f64::INFINITY, f64::min);
+            let got = dist(&codes.codes[l.code[k] as usize].centroid);
+            assert!(
+                got <= best + 1e-6,
+                "{id} t {k}: code {} at {got}, nearest at {best}",
+                l.code[k]
+            );
+        }
+    }
+    // k-means was fitted on the model-time train transitions.
+    // Robot clips 0..24: i % 4 == 1 calib, 2 holdout, else train (12 clips of
+    // 59 transitions); human clips: 40 frames -> 79 model frames, 78 model
+    // transitions each, every one sampled (the sample limit is 20 000).
+    let state: actuary::label::output::LabelState =
+        actuary::store::read_json(&label_dir.join(actuary::label::output::STATE_FILE)).unwrap();
+    assert_eq!(state.train_transitions, 12 * 59 + 3 * 78);
+    assert_eq!(state.kmeans_points, 12 * 59 + 3 * 78);
 }

@@ -395,7 +395,7 @@ mod bench {
             seed: 1,
             threads: 2,
         };
-        actuary::label::label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap();
+        actuary::label::label_run(&job, &fit, &crate::label::view(run)).unwrap();
     }
 
     fn record_template(id: &str, frames: u32) -> serde_json::Value {
@@ -555,8 +555,7 @@ mod bench {
             threads: 2,
         };
         let t0 = Instant::now();
-        let s =
-            actuary::label::label_run(&job, &fit, &actuary::label::model::DecodedFrames).unwrap();
+        let s = actuary::label::label_run(&job, &fit, &crate::label::view(&run)).unwrap();
         let secs = t0.elapsed().as_secs_f64();
         println!(
             "BENCH {{\"what\":\"label\",\"threads\":2,\"transitions\":{},\"inferred\":{},\"seconds\":{secs},\"transitions_per_s\":{}}}",
