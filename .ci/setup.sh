@@ -19,3 +19,12 @@ fi
 PIP="python3 -m pip"
 $PIP install -q --disable-pip-version-check $(grep -v '^#' .ci/requirements.txt) 2>/dev/null \
   || $PIP install -q --disable-pip-version-check --break-system-packages $(grep -v '^#' .ci/requirements.txt)
+# Azurite, the Azure Storage emulator, for the az:// tests (3.33.0 declares
+# Node.js >= 10; 3.37 needs 22 and this image has 20). From the npm registry.
+if ! command -v azurite-blob >/dev/null; then
+  if ! command -v npm >/dev/null; then
+    $SUDO apt-get install -y -qq --no-install-recommends nodejs npm >/dev/null
+  fi
+  $SUDO npm install --silent --no-audit --no-fund --prefix /opt/azurite azurite@3.33.0
+  $SUDO ln -sf /opt/azurite/node_modules/.bin/azurite-blob /usr/local/bin/azurite-blob
+fi

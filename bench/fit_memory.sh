@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # Fit-stage memory benchmark (not a test): peak RSS (/usr/bin/time -v,
 # "Maximum resident set size") of the fit stage alone on the synthetic demo
-# clips at 1x (20 robot + 60 human, the committed demo) and 10x (200 + 600).
+# clips at 1x (40 robot + 120 human, the committed demo) and 10x (400 + 1200).
 # For each size it generates the clips (`actuary demo-clips`), runs
 # `actuary run --until align` untimed, then times a second
 # `actuary run --until fit`, in which decode and align are skipped (inputs
@@ -27,8 +27,8 @@ ROOT=$(pwd)
 THREADS=${THREADS:-2}
 STEPS=${STEPS:-100}
 GAP_SAMPLE=${GAP_SAMPLE:-2000}
-ROBOT=20
-HUMAN=60
+ROBOT=40
+HUMAN=120
 BIN=${ACTUARY:-$ROOT/target/release/actuary}
 
 if [ ! -x "$BIN" ]; then

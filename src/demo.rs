@@ -53,9 +53,9 @@ use scene::{Embodiment, Kind, MICRO_PER_CM, Simulation};
 /// Seed of the committed demo set.
 pub const DEFAULT_SEED: u64 = 7;
 /// Robot clips in the committed demo set.
-pub const DEFAULT_ROBOT_CLIPS: usize = 20;
+pub const DEFAULT_ROBOT_CLIPS: usize = 40;
 /// Human clips in the committed demo set.
-pub const DEFAULT_HUMAN_CLIPS: usize = 60;
+pub const DEFAULT_HUMAN_CLIPS: usize = 120;
 /// Video frame rate of the demo clips.
 pub const DEFAULT_FPS: f64 = 10.0;
 /// Width and height of the demo clips in pixels.

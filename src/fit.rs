@@ -47,7 +47,7 @@ pub use stage::{
 use crate::model::{self, HeadLoss, SharedVariance};
 
 /// Default training steps per model.
-pub const DEFAULT_STEPS: u32 = 600;
+pub const DEFAULT_STEPS: u32 = 2000;
 /// Default frame pairs per batch.
 pub const DEFAULT_BATCH: usize = 64;
 /// Default AdamW learning rate.

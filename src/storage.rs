@@ -202,6 +202,30 @@ pub fn open(url: &str, opts: &StoreOptions) -> Result<Location, StorageError> {
             }
             (Arc::new(b.build().map_err(store_err(&url))?), prefix)
         }
+        "gs" => {
+            let (bucket, prefix) = rest.split_once('/').unwrap_or((rest, ""));
+            if bucket.is_empty() {
+                return Err(bad());
+            }
+            // Credentials and endpoint from GOOGLE_* variables (object_store's from_env).
+            let b =
+                object_store::gcp::GoogleCloudStorageBuilder::from_env().with_bucket_name(bucket);
+            (Arc::new(b.build().map_err(store_err(&url))?), prefix)
+        }
+        "az" | "abfs" => {
+            let (container, prefix) = rest.split_once('/').unwrap_or((rest, ""));
+            if container.is_empty() {
+                return Err(bad());
+            }
+            // Account, key and emulator switch from AZURE_* variables (object_store's
+            // from_env); `AZURE_STORAGE_USE_EMULATOR=true` targets a local Azurite.
+            let mut b = object_store::azure::MicrosoftAzureBuilder::from_env()
+                .with_container_name(container);
+            if opts.allow_http {
+                b = b.with_allow_http(true);
+            }
+            (Arc::new(b.build().map_err(store_err(&url))?), prefix)
+        }
         _ => return Err(bad()),
     };
     Ok(Location {

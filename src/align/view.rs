@@ -223,34 +223,39 @@ impl AlignedClip {
             });
         }
         if let Some(copy) = &self.copy {
-            out.copy_from_slice(copy.frame(i));
+            copy.read_into(i, out)?;
             return Ok(());
         }
-        self.raw_model_frame(i, out);
+        self.raw_model_frame(i, out)?;
         if let Some(t) = &self.info.photometric {
             t.apply(out);
         }
         Ok(())
     }
 
-    /// Model-time frame `i` without colour normalisation (resampled only).
-    pub(crate) fn raw_model_frame(&self, i: usize, out: &mut [u8]) {
+    /// Model-time frame `i` without colour normalisation (resampled only),
+    /// read with positioned reads ([`FrameReader::read_into`]).
+    pub(crate) fn raw_model_frame(&self, i: usize, out: &mut [u8]) -> Result<(), AlignError> {
         let p = self.positions[i];
         let k0 = p.floor() as usize;
         let w = p - k0 as f64;
         if w < 1e-6 || k0 + 1 >= self.frames.len() {
-            out.copy_from_slice(self.frames.frame(k0));
+            self.frames.read_into(k0, out)?;
         } else if self.resample == Resample::Nearest {
-            out.copy_from_slice(self.frames.frame(if w < 0.5 { k0 } else { k0 + 1 }));
+            self.frames
+                .read_into(if w < 0.5 { k0 } else { k0 + 1 }, out)?;
         } else {
-            let (a, b) = (self.frames.frame(k0), self.frames.frame(k0 + 1));
+            let mut b = vec![0u8; out.len()];
+            self.frames.read_into(k0, out)?;
+            self.frames.read_into(k0 + 1, &mut b)?;
             let (wa, wb) = ((1.0 - w) as f32, w as f32);
-            for ((o, &x), &y) in out.iter_mut().zip(a).zip(b) {
-                *o = (wa * f32::from(x) + wb * f32::from(y))
+            for (o, &y) in out.iter_mut().zip(&b) {
+                *o = (wa * f32::from(*o) + wb * f32::from(y))
                     .round()
                     .clamp(0.0, 255.0) as u8;
             }
         }
+        Ok(())
     }
 
     /// Recorded actions per model-time transition (`len() - 1` rows) for labelled clips,

@@ -158,11 +158,16 @@ pub fn train(ds: &mut Dataset, spec: &TrainSpec<'_>) -> Result<Trained, FitError
         .map_err(FitError::io(&log))?;
 
     let batch = opts.batch.max(4);
+    // The labelled-only model gets the same labelled rows per step as the
+    // semi-supervised one (the unlabelled rows are left out, not replaced), so
+    // the two differ only in what the unlabelled clips add.
+    let share_l = ((batch as f64 * opts.labelled_share).round() as usize).clamp(2, batch - 2);
     let (n_l, n_u) = if spec.use_unlabelled && ds.unlabelled_len() > 0 {
-        let n_l = ((batch as f64 * opts.labelled_share).round() as usize).clamp(2, batch - 2);
-        (n_l, batch - n_l)
-    } else {
+        (share_l, batch - share_l)
+    } else if spec.use_unlabelled {
         (batch, 0)
+    } else {
+        (share_l, 0)
     };
     let loss_opts = LossOptions {
         action_weight: opts.action_weight,

@@ -136,6 +136,7 @@ fn header(width: u32, height: u32, frames: u32) -> [u8; HEADER_BYTES] {
 /// A memory-mapped, read-only view of one clip's frames.
 pub struct FrameReader {
     map: memmap2::Mmap,
+    file: fs::File,
     path: PathBuf,
     width: u32,
     height: u32,
@@ -173,6 +174,7 @@ impl FrameReader {
         }
         let reader = Self {
             map,
+            file,
             path: path.to_path_buf(),
             width,
             height,
@@ -226,6 +228,35 @@ impl FrameReader {
             let _ = self
                 .map
                 .unchecked_advise(memmap2::UncheckedAdvice::DontNeed);
+        }
+    }
+
+    /// Copies frame `index` into `out` (`frame_bytes()` bytes) with a
+    /// positioned read (`pread`) instead of through the mapping, so random
+    /// access over many clips adds nothing to the resident set size: the
+    /// bytes pass through the kernel's page cache, which is not the process's
+    /// memory. Training samples frames this way. Panics when out of range.
+    pub fn read_into(&self, index: usize, out: &mut [u8]) -> Result<(), FrameStoreError> {
+        assert!(
+            index < self.len() && out.len() == self.frame_bytes(),
+            "frame {index} of {} ({} frames, {} bytes) into a {}-byte buffer",
+            self.path.display(),
+            self.len(),
+            self.frame_bytes(),
+            out.len()
+        );
+        let start = HEADER_BYTES + index * self.frame_bytes();
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::FileExt as _;
+            self.file
+                .read_exact_at(out, start as u64)
+                .map_err(io_err(&self.path))
+        }
+        #[cfg(not(unix))]
+        {
+            out.copy_from_slice(&self.map[start..start + out.len()]);
+            Ok(())
         }
     }
 

@@ -26,16 +26,33 @@ impl Drop for Moto {
     }
 }
 
+/// A TCP port free on 127.0.0.1 just now.
+fn free_port() -> u16 {
+    TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+/// Waits (up to 60 s) until `server` accepts connections on 127.0.0.1:`port`.
+fn wait_for_port(port: u16, server: &str) {
+    let started = Instant::now();
+    while std::net::TcpStream::connect(("127.0.0.1", port)).is_err() {
+        assert!(
+            started.elapsed() < Duration::from_secs(60),
+            "{server} did not start"
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
+
 fn start_moto() -> Option<Moto> {
     if !require_python(&["boto3", "moto"]) || !crate::util::require_tool("moto_server", &["--help"])
     {
         return None;
     }
-    let port = TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
+    let port = free_port();
     let child = Command::new("moto_server")
         .args(["-H", "127.0.0.1", "-p", &port.to_string()])
         .stdout(Stdio::null())
@@ -46,14 +63,7 @@ fn start_moto() -> Option<Moto> {
         child,
         endpoint: format!("http://127.0.0.1:{port}"),
     };
-    let started = Instant::now();
-    while std::net::TcpStream::connect(("127.0.0.1", port)).is_err() {
-        assert!(
-            started.elapsed() < Duration::from_secs(60),
-            "moto_server did not start"
-        );
-        std::thread::sleep(Duration::from_millis(100));
-    }
+    wait_for_port(port, "moto_server");
     Some(moto)
 }
 
@@ -186,13 +196,10 @@ fn clip_set_in_s3_decodes_like_the_same_clips_on_disk() {
     assert!(!all.contains("secret-that-must-not-leak"));
 }
 
-#[test]
-fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
-    let Some(m) = start_moto() else { return };
-    boto(&m, "s3.create_bucket(Bucket='data')\n");
-    let tmp = tempfile::tempdir().unwrap();
-    let root = tmp.path();
-    // A stand-in shard folder: a manifest and a 6 MB file (two multipart parts of 5.3 MB max).
+/// A stand-in run folder under `root`: `run/shard/` with a manifest and a 6 MB
+/// file (two multipart parts of 5.3 MB at most), and an empty `clips/`.
+/// Returns the big file's bytes.
+fn stand_in_run(root: &Path) -> Vec<u8> {
     let shard = root.join("run/shard");
     std::fs::create_dir_all(&shard).unwrap();
     std::fs::write(shard.join("manifest.json"), "{\"stage\": \"shard\"}\n").unwrap();
@@ -201,6 +208,44 @@ fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
         .collect();
     std::fs::write(shard.join("shard-00000.parquet"), &big).unwrap();
     std::fs::create_dir_all(root.join("clips")).unwrap();
+    big
+}
+
+/// Publishing the same dataset again is a no-op; publishing a changed one to
+/// the same place is refused (the marker's conditional create). Returns the
+/// refused run's output.
+fn republish(
+    root: &Path,
+    spec: &Path,
+    run: impl Fn(&[&str]) -> (i32, String, String),
+) -> (i32, String, String) {
+    let again = run(&["publish", s(spec)]);
+    assert!(
+        again.0 == 0 && again.1.contains("already published"),
+        "{}",
+        again.1
+    );
+    std::fs::write(
+        root.join("run/shard/manifest.json"),
+        "{\"stage\": \"shard\", \"changed\": true}\n",
+    )
+    .unwrap();
+    let other = run(&["publish", s(spec)]);
+    assert!(
+        other.0 != 0 && other.2.contains("different dataset is already published"),
+        "{}",
+        other.2
+    );
+    other
+}
+
+#[test]
+fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
+    let Some(m) = start_moto() else { return };
+    boto(&m, "s3.create_bucket(Bucket='data')\n");
+    let tmp = tempfile::tempdir().unwrap();
+    let root = tmp.path();
+    let big = stand_in_run(root);
     let spec = root.join("spec.toml");
     std::fs::write(
         &spec,
@@ -231,23 +276,7 @@ fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
         "{listing}"
     );
 
-    let again = actuary_env(&["publish", s(&spec)]);
-    assert!(
-        again.0 == 0 && again.1.contains("already published"),
-        "{}",
-        again.1
-    );
-    std::fs::write(
-        shard.join("manifest.json"),
-        "{\"stage\": \"shard\", \"changed\": true}\n",
-    )
-    .unwrap();
-    let other = actuary_env(&["publish", s(&spec)]);
-    assert!(
-        other.0 != 0 && other.2.contains("different dataset is already published"),
-        "{}",
-        other.2
-    );
+    let other = republish(root, &spec, actuary_env);
 
     let dest = root.join("pulled");
     let args = [
@@ -282,4 +311,146 @@ fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
         refused.2
     );
     assert!(!format!("{}{}{}", out.2, other.2, refused.2).contains("secret-that-must-not-leak"));
+}
+
+/// An Azurite blob server (the Azure Storage emulator, npm package `azurite`)
+/// on 127.0.0.1, stopped (by its PID) on drop.
+struct Azurite {
+    child: Child,
+    url: String,
+    _data: tempfile::TempDir,
+}
+
+impl Drop for Azurite {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn start_azurite() -> Option<Azurite> {
+    if !require_python(&["azure.storage.blob"])
+        || !crate::util::require_tool("azurite-blob", &["--version"])
+    {
+        return None;
+    }
+    let port = free_port();
+    let data = tempfile::tempdir().unwrap();
+    let child = Command::new("azurite-blob")
+        .args(["--blobHost", "127.0.0.1", "--blobPort", &port.to_string()])
+        .args([
+            "--location",
+            s(data.path()),
+            "--skipApiVersionCheck",
+            "--silent",
+        ])
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("azurite-blob starts");
+    let az = Azurite {
+        child,
+        url: format!("http://127.0.0.1:{port}"),
+        _data: data,
+    };
+    wait_for_port(port, "azurite-blob");
+    Some(az)
+}
+
+/// Runs `code` with `blobs` bound to the emulator's container `data`, through
+/// Microsoft's `azure-storage-blob` client (the outside reference). The account
+/// and key are the emulator's published development ones.
+fn azure_py(az: &Azurite, code: &str) -> String {
+    let prelude = format!(
+        "from azure.storage.blob import BlobServiceClient\n\
+         conn = ('DefaultEndpointsProtocol=http;AccountName=devstoreaccount1;'\n\
+         'AccountKey=Eby8vdM02xNOcqFlqUwJPLlmEtlCDXJ1OUzFT50uSRZ6IFsuFq2UVErCz4I6tq/K1SZFPTOtr/KBHBeksoGMGw==;'\n\
+         'BlobEndpoint={}/devstoreaccount1;')\n\
+         svc = BlobServiceClient.from_connection_string(conn)\n\
+         blobs = svc.get_container_client('data')\n",
+        az.url
+    );
+    crate::util::python(&(prelude + code), &[])
+}
+
+/// Runs the binary against the emulator (credentials from the environment only).
+fn actuary_azure(az: &Azurite, args: &[&str]) -> (i32, String, String) {
+    let out = Command::new(env!("CARGO_BIN_EXE_actuary"))
+        .args(args)
+        .env("ACTUARY_QUIET", "1")
+        .env("AZURE_STORAGE_USE_EMULATOR", "true")
+        .env("AZURITE_BLOB_STORAGE_URL", &az.url)
+        .output()
+        .expect("actuary runs");
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+#[test]
+fn publish_and_pull_through_azure_blob_storage() {
+    // Reference: Azurite, Microsoft's Azure Storage emulator, and Microsoft's
+    // azure-storage-blob Python client, which lists what was uploaded.
+    let Some(az) = start_azurite() else { return };
+    azure_py(&az, "svc.create_container('data')\n");
+    let tmp = tempfile::tempdir().unwrap();
+    let root = tmp.path();
+    let big = stand_in_run(root);
+    let spec = root.join("spec.toml");
+    std::fs::write(
+        &spec,
+        "out = \"run\"\n[sets.robot]\ndir = \"clips\"\nlabelled = true\n[cluster]\npublish = \"az://data/tabletop/v1\"\n[cluster.store]\npart-size-mb = 5.3\n",
+    )
+    .unwrap();
+    let out = actuary_azure(&az, &["publish", s(&spec)]);
+    assert_eq!(out.0, 0, "{}", out.2);
+    assert!(out.1.contains("published 2 file(s)"), "{}", out.1);
+    let listing = azure_py(
+        &az,
+        "for b in blobs.list_blobs(name_starts_with='tabletop/v1/'):\n    print(b.name, b.size)\n",
+    );
+    assert!(
+        listing.contains("tabletop/v1/shard-00000.parquet 6000000"),
+        "{listing}"
+    );
+    assert!(
+        listing.contains("tabletop/v1/actuary-commit.json"),
+        "{listing}"
+    );
+    republish(root, &spec, |a| actuary_azure(&az, a));
+    let dest = root.join("pulled");
+    let pulled = actuary_azure(&az, &["pull", "az://data/tabletop/v1", s(&dest)]);
+    assert_eq!(pulled.0, 0, "{}", pulled.2);
+    assert!(std::fs::read(dest.join("shard-00000.parquet")).unwrap() == big);
+    azure_py(
+        &az,
+        "blobs.delete_blob('tabletop/v1/actuary-commit.json')\n",
+    );
+    let refused = actuary_azure(&az, &["pull", "az://data/tabletop/v1", s(&root.join("p2"))]);
+    assert_ne!(refused.0, 0);
+    assert!(
+        refused.2.contains("no commit marker") && refused.2.contains("refusing"),
+        "{}",
+        refused.2
+    );
+}
+
+#[test]
+fn gs_url_without_credentials_is_a_clear_error_naming_the_url() {
+    // No Google Cloud Storage emulator is available here, so this only checks
+    // that gs:// is built in and fails with the URL and the store's reason
+    // rather than "not a supported object store URL".
+    let tmp = tempfile::tempdir().unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_actuary"))
+        .args(["pull", "gs://no-such-bucket/x", s(&tmp.path().join("p"))])
+        .env("ACTUARY_QUIET", "1")
+        .env("GOOGLE_SERVICE_ACCOUNT", tmp.path().join("missing.json"))
+        .output()
+        .expect("actuary runs");
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_ne!(out.status.code(), Some(0));
+    assert!(err.contains("gs://no-such-bucket/x"), "{err}");
+    assert!(!err.contains("not a supported object store URL"), "{err}");
 }
