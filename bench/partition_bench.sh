@@ -6,7 +6,7 @@
 #
 # Generates the demo clips (SIZE x SIZE pixels, default 256, so that decoding,
 # not Slurm's scheduling, is most of the work) and COPIES more copies of
-# each under new names (env, default 4), then decodes the same clips twice through Slurm in
+# each under new names (env, default 9), then decodes the same clips twice through Slurm in
 # one go: as 1 part (one task, 1 CPU) and as 2 parts (two tasks, 1 CPU each),
 # each into a fresh run folder. Wall time is from `actuary submit` to the
 # merged stage manifest; the per-part overhead is that wall time minus the
@@ -24,8 +24,8 @@ WORK="$(mktemp -d)"
 trap 'rm -rf "$WORK"' EXIT
 "$BIN" demo-clips "$WORK/d" --robot-clips "$ROBOT" --human-clips "$HUMAN" --size "$SIZE" >/dev/null
 # COPIES extra copies of every clip (and sidecar) under new names: more decode
-# work per run without rendering more clips (default 4, so 5x the clips).
-COPIES="${COPIES:-4}"
+# work per run without rendering more clips (default 9, so 10x the clips).
+COPIES="${COPIES:-9}"
 for dir in "$WORK/d/robot" "$WORK/d/human"; do
   for f in "$dir"/*.mp4; do
     base="${f%.mp4}"

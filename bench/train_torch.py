@@ -112,9 +112,14 @@ class Net(nn.Module):
         kl = (0.5 * (mu ** 2 + lv.exp() - 1 - lv).sum(1)).mean()
         act = 0.0
         for m, head in enumerate(self.heads):
+            # Faithful head loss (actuary's default `head-loss`): the mean by squared
+            # error, the log-variance by the NLL on the detached posterior mean and
+            # the detached head mean (a second head pass, as in candle).
             o = head(mu[:n_l])
-            mean, hlv = o[:, :A], o[:, A:].clamp(-12, 8)
-            nll = (0.5 * (LN_2PI + hlv + (actions - mean) ** 2 * torch.exp(-hlv))).sum(1)
+            mean = o[:, :A]
+            hlv = head(mu[:n_l].detach())[:, A:].clamp(-12, 8)
+            nll = (0.5 * (actions - mean) ** 2
+                   + 0.5 * (LN_2PI + hlv + (actions - mean.detach()) ** 2 * torch.exp(-hlv))).sum(1)
             act = act + (nll * boot[m]).sum() / n_l
         act = act / HEADS
         x, y = mu[:n_l], mu[n_l:]

@@ -417,7 +417,12 @@ mod bench {
             std::env::var("ACTUARY_BENCH_RUN").expect("ACTUARY_BENCH_RUN"),
         );
         let _ = std::fs::remove_dir_all(&run);
-        smooth_run(&run, 200, 100);
+        // ACTUARY_BENCH_CLIPS: fewer clips for a profile under callgrind.
+        let clips = std::env::var("ACTUARY_BENCH_CLIPS")
+            .ok()
+            .and_then(|v| v.parse().ok())
+            .unwrap_or(200);
+        smooth_run(&run, clips, 100);
         for (threads, image, name) in [
             (1usize, ImageEncoding::Png, "png"),
             (2, ImageEncoding::Png, "png"),
