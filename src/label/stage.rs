@@ -550,13 +550,16 @@ fn finish_clip(
     l
 }
 
+/// The clip's recorded actions on the decode grid, as the align stage left
+/// them: re-mapped with the estimated clock offset when it estimated one
+/// (`offset = "estimate"`), else as decoded.
 fn actions_of<'c>(clip: &'c Clip<'_>) -> Result<&'c [Vec<f32>], LabelError> {
-    match &clip.rec.actions {
+    match clip.view.decode_actions() {
         Some(a) if a.len() == clip.transitions() => Ok(a),
         other => Err(LabelError::MissingActions {
             set: clip.rec.set.clone(),
             id: clip.rec.id.clone(),
-            rows: other.as_ref().map_or(0, |a| a.len()),
+            rows: other.map_or(0, <[Vec<f32>]>::len),
             transitions: clip.transitions(),
         }),
     }

@@ -169,8 +169,12 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
     let records = decoded_clips(job.run_dir).map_err(io_at(&decode_dir))?;
     let cal_path = label_dir.join(CALIBRATION_FILE);
     let calibration: Option<CalibrationFigures> = crate::store::read_json(&cal_path).ok();
+    let mut remapped = offset_corrected_actions(job.run_dir)?;
     let mut clips = Vec::with_capacity(records.len());
-    for rec in records {
+    for mut rec in records {
+        if let Some(a) = remapped.remove(&(rec.set.clone(), rec.id.clone())) {
+            rec.actions = Some(a);
+        }
         let lpath = ClipLabels::path(&label_dir, &rec.set, &rec.id);
         let bad = |reason: String| ShardError::Labels {
             set: rec.set.clone(),
@@ -351,6 +355,26 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
         shuffle_seed: job.opts.shuffle.then_some(job.seed),
         unchanged,
     })
+}
+
+/// The decode-grid actions the align stage re-mapped with an estimated clock
+/// offset (`[actions] offset = "estimate"`), by (set, clip id): these, not the
+/// decode stage's, fill the `action` column. Empty when align did not run or
+/// estimated no offset.
+fn offset_corrected_actions(
+    run_dir: &Path,
+) -> Result<BTreeMap<(String, String), Vec<Vec<f32>>>, ShardError> {
+    let path = crate::align::view::alignment_path(run_dir);
+    if !path.exists() {
+        return Ok(BTreeMap::new());
+    }
+    let alignment: crate::align::Alignment =
+        crate::store::read_json(&path).map_err(io_at(&path))?;
+    Ok(alignment
+        .clips
+        .into_iter()
+        .filter_map(|c| c.actions.map(|a| ((c.set, c.id), a)))
+        .collect())
 }
 
 /// Removes everything in `dir` but the shards and the manifest.

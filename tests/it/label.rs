@@ -587,3 +587,84 @@ fn label_stage_infers_speed_resampled_clips_in_model_time() {
     assert_eq!(state.train_transitions, 12 * 59 + 3 * 78);
     assert_eq!(state.kmeans_points, 12 * 59 + 3 * 78);
 }
+
+/// Every labelled clip's decode-grid actions moved one transition earlier
+/// (`a_k <- a_{k+1}`, the last kept), as a re-mapping with an estimated clock
+/// offset of one frame interval would move them, written into the align
+/// stage's `alignment.json`. Returns the re-mapped actions by clip id.
+fn remap_actions_in_alignment(run: &Path) -> BTreeMap<String, Vec<Vec<f32>>> {
+    let path = actuary::align::view::alignment_path(run);
+    let mut alignment: actuary::align::Alignment = actuary::store::read_json(&path).unwrap();
+    let decode = run.join("decode");
+    let mut out = BTreeMap::new();
+    for c in alignment.clips.iter_mut().filter(|c| c.labelled) {
+        let rec: ClipRecord =
+            actuary::store::read_json(&ClipRecord::record_path(&decode, &c.set, &c.id)).unwrap();
+        let orig = rec.actions.unwrap();
+        let mut moved = orig[1..].to_vec();
+        moved.push(orig.last().unwrap().clone());
+        out.insert(c.id.clone(), moved.clone());
+        c.actions = Some(moved);
+    }
+    write_json_atomic(&path, &alignment).unwrap();
+    out
+}
+
+#[test]
+fn offset_corrected_actions_reach_calibration_and_the_shards() {
+    // The align stage re-maps a clip's log with an estimated clock offset and
+    // later stages read the re-mapped actions (the design's clock-offset rule).
+    // Label: the fake model's estimates follow the decoded actions, so
+    // calibrating against actions moved by a frame must widen the conformal
+    // quantile. Shard: the `action` column, read back with pyarrow (Apache
+    // Arrow's Python library), holds the re-mapped actions.
+    if !util::require_python(&["pyarrow"]) {
+        return;
+    }
+    let quantiles = |run: &Path| -> Vec<f64> {
+        let cal: actuary::label::CalibrationFigures =
+            actuary::store::read_json(&run.join("label/calibration.json")).unwrap();
+        cal.dims.iter().map(|d| d.quantile.q).collect()
+    };
+    let plain = tempfile::tempdir().unwrap();
+    let splits = fake_decode(plain.path(), 24, 3);
+    write_alignment(plain.path(), 1.0);
+    label(plain.path(), splits, 2);
+
+    let dir = tempfile::tempdir().unwrap();
+    let run = dir.path();
+    let splits = fake_decode(run, 24, 3);
+    write_alignment(run, 1.0);
+    let moved = remap_actions_in_alignment(run);
+    label(run, splits, 2);
+    let (q_plain, q_moved) = (quantiles(plain.path()), quantiles(run));
+    assert!(
+        q_moved[0] > q_plain[0] * 1.2,
+        "dx quantile with moved actions {q_moved:?}, as decoded {q_plain:?}"
+    );
+
+    let opts = actuary::shard::ShardOptions::default();
+    let shard_dir = run.join("shard");
+    actuary::shard::write_shards(&actuary::shard::ShardJob {
+        run_dir: run,
+        shard_dir: &shard_dir,
+        opts: &opts,
+        seed: 7,
+        threads: 2,
+    })
+    .unwrap();
+    let out = util::python(
+        "import sys, glob, json, pyarrow.parquet as pq\n\
+         t = pq.read_table(sorted(glob.glob(sys.argv[1] + '/*.parquet')), columns=['clip', 'frame', 'action'])\n\
+         rows = sorted((r['frame'], r['action']) for r in t.to_pylist() if r['clip'] == 'pick-00')\n\
+         print(json.dumps([a for _, a in rows]))\n",
+        &[util::s(&shard_dir)],
+    );
+    let got: Vec<Option<Vec<f32>>> = serde_json::from_str(out.trim()).unwrap();
+    let want = &moved["pick-00"];
+    assert_eq!(got.len(), want.len() + 1, "one row per frame");
+    for (k, w) in want.iter().enumerate() {
+        assert_eq!(got[k].as_ref(), Some(w), "frame {k}");
+    }
+    assert_eq!(got[want.len()], None, "the last frame has no action");
+}
