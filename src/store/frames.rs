@@ -294,6 +294,12 @@ mod tests {
         assert_eq!((r.width(), r.height(), r.len()), (2, 3, 2));
         assert_eq!(r.frame(0), &a[..]);
         assert_eq!(r.frame(1), &b[..]);
+        // Positioned reads give the same bytes as the mapping.
+        let mut out = vec![0u8; 18];
+        r.read_into(1, &mut out).unwrap();
+        assert_eq!(out, b);
+        r.read_into(0, &mut out).unwrap();
+        assert_eq!(out, a);
     }
 
     #[test]
