@@ -28,7 +28,8 @@
 //! pattern appears anywhere, with weights shared across positions, so a small
 //! pattern need not be learnt once per position of the `fc` layer. On the
 //! demo they raised holdout dx / dy R^2 from 0.85 / 0.82 to 0.92 / 0.95 (600
-//! steps); the gripper state (a few pixels of finger gap) is still not learnt.
+//! steps). The gripper state (a few pixels of finger gap) was learnt only
+//! with the faithful head loss and more steps (see [`HeadLoss`]).
 //! Global pooling is Lin et al. 2014 ("Network in Network"); max rather than
 //! mean keeps a small pattern from being averaged away (common practice, no
 //! source).
@@ -46,7 +47,9 @@
 //! ```text
 //! recon_i  = 0.5 D (ln 2pi + ln s2) + 0.5 |x̂_t1,i - pool^r(x_t1,i)|^2 / s2       (D values)
 //! kl_i     = KL(q(z|t,t+1) || N(0, I))                       (Kingma & Welling 2014, app. B)
-//! action   = (1/M) sum_m (1/n_l) sum_{i<n_l} w_mi sum_a nll(a_ia; mean_m(z_i)_a, lv_m(z_i)_a)
+//! action   = (1/M) sum_m (1/n_l) sum_{i<n_l} w_mi sum_a l(a_ia; mean_m(mu_i)_a, lv_m(mu_i)_a)
+//!            l = nll (HeadLoss::Nll), or (HeadLoss::Faithful, the default)
+//!            l = 0.5 (a - mean)^2 + nll(a; sg(mean), lv_m(sg(mu_i)))   sg = stop-gradient
 //! align    = MMD2_u(mu[..n_l], mu[n_l..])                    (Gretton et al. 2012, eq. 3)
 //! total    = mean_i(recon_i + kl_i) + action_weight * action + align_weight * align
 //! ```

@@ -8,11 +8,11 @@
 //! hidden = 128                # flat feature width
 //! head-hidden = 64            # hidden width of each action head
 //! heads = 5                   # ensemble size (bootstrap resamples)
-//! steps = 600                 # training steps per model
+//! steps = 2000                # training steps per model
 //! batch = 64                  # frame pairs per step
 //! learning-rate = 0.002       # AdamW, cosine decay to a tenth
-//! labelled-share = 0.5        # share of labelled pairs in each batch, in (0, 1)
-//! action-weight = 100.0       # weight of the action NLL
+//! labelled-share = 0.5        # share of labelled pairs in each batch, in (0, 1); labelled-only trains on that many
+//! action-weight = 100.0       # weight of the action loss (see head-loss)
 //! align-weight = 100.0        # weight of the MMD^2 alignment penalty (0 = off)
 //! shared-variance = "closed-form"   # or "learned"
 //! head-loss = "faithful"      # or "nll" (plain Gaussian NLL)
