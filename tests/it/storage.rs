@@ -197,9 +197,10 @@ fn clip_set_in_s3_decodes_like_the_same_clips_on_disk() {
 }
 
 /// A stand-in run folder under `root`: `run/shard/` with a manifest and a 6 MB
-/// file (two multipart parts of 5.3 MB at most), and an empty `clips/`.
-/// Returns the big file's bytes.
-fn stand_in_run(root: &Path) -> Vec<u8> {
+/// file (two multipart parts of 5.3 MB at most), an empty `clips/`, and
+/// `spec.toml` publishing to `publish` with `store` (a `[cluster.store]`
+/// table) appended. Returns the big file's bytes and the spec's path.
+fn stand_in_run(root: &Path, publish: &str, store: &str) -> (Vec<u8>, std::path::PathBuf) {
     let shard = root.join("run/shard");
     std::fs::create_dir_all(&shard).unwrap();
     std::fs::write(shard.join("manifest.json"), "{\"stage\": \"shard\"}\n").unwrap();
@@ -208,7 +209,15 @@ fn stand_in_run(root: &Path) -> Vec<u8> {
         .collect();
     std::fs::write(shard.join("shard-00000.parquet"), &big).unwrap();
     std::fs::create_dir_all(root.join("clips")).unwrap();
-    big
+    let spec = root.join("spec.toml");
+    std::fs::write(
+        &spec,
+        format!(
+            "out = \"run\"\n[sets.robot]\ndir = \"clips\"\nlabelled = true\n[cluster]\npublish = \"{publish}\"\n{store}"
+        ),
+    )
+    .unwrap();
+    (big, spec)
 }
 
 /// Publishing the same dataset again is a no-op; publishing a changed one to
@@ -245,16 +254,7 @@ fn publish_writes_the_marker_last_and_pull_refuses_a_dataset_without_one() {
     boto(&m, "s3.create_bucket(Bucket='data')\n");
     let tmp = tempfile::tempdir().unwrap();
     let root = tmp.path();
-    let big = stand_in_run(root);
-    let spec = root.join("spec.toml");
-    std::fs::write(
-        &spec,
-        format!(
-            "out = \"run\"\n[sets.robot]\ndir = \"clips\"\nlabelled = true\n[cluster]\npublish = \"s3://data/tabletop/v1\"\n{}",
-            store_table(&m)
-        ),
-    )
-    .unwrap();
+    let (big, spec) = stand_in_run(root, "s3://data/tabletop/v1", &store_table(&m));
     let out = actuary_env(&["publish", s(&spec)]);
     assert_eq!(out.0, 0, "{}", out.2);
     assert!(out.1.contains("published 2 file(s)"), "{}", out.1);
@@ -397,13 +397,11 @@ fn publish_and_pull_through_azure_blob_storage() {
     azure_py(&az, "svc.create_container('data')\n");
     let tmp = tempfile::tempdir().unwrap();
     let root = tmp.path();
-    let big = stand_in_run(root);
-    let spec = root.join("spec.toml");
-    std::fs::write(
-        &spec,
-        "out = \"run\"\n[sets.robot]\ndir = \"clips\"\nlabelled = true\n[cluster]\npublish = \"az://data/tabletop/v1\"\n[cluster.store]\npart-size-mb = 5.3\n",
-    )
-    .unwrap();
+    let (big, spec) = stand_in_run(
+        root,
+        "az://data/tabletop/v1",
+        "[cluster.store]\npart-size-mb = 5.3\n",
+    );
     let out = actuary_azure(&az, &["publish", s(&spec)]);
     assert_eq!(out.0, 0, "{}", out.2);
     assert!(out.1.contains("published 2 file(s)"), "{}", out.1);
