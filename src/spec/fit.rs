@@ -70,16 +70,6 @@ pub enum RawSharedVariance {
     Learned,
 }
 
-/// `head-loss` values.
-#[derive(Debug, Clone, Copy, PartialEq, Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum RawHeadLoss {
-    /// Squared error for the mean, NLL for the detached variance.
-    Faithful,
-    /// Plain Gaussian NLL.
-    Nll,
-}
-
 /// `[fit]` as written in the spec.
 #[derive(Debug, Deserialize, Default)]
 #[serde(deny_unknown_fields, rename_all = "kebab-case")]
@@ -109,7 +99,7 @@ pub struct RawFit {
     /// Shared variance mode.
     pub shared_variance: Option<RawSharedVariance>,
     /// Action-head loss.
-    pub head_loss: Option<RawHeadLoss>,
+    pub head_loss: Option<HeadLoss>,
     /// Posterior sees the deepest map too.
     pub posterior_positions: Option<bool>,
     /// Checkpoint interval.
@@ -265,10 +255,7 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
         };
     }
     if let Some(v) = head_loss {
-        o.head_loss = match v {
-            RawHeadLoss::Faithful => HeadLoss::Faithful,
-            RawHeadLoss::Nll => HeadLoss::Nll,
-        };
+        o.head_loss = *v;
     }
     if let Some(v) = posterior_positions {
         o.posterior_positions = *v;
@@ -338,7 +325,8 @@ mod tests {
     fn keys_resolve_and_ranges_are_checked() {
         let (o, n) = parse(
             "latent = 4\nwidths = [8, 16]\nsteps = 10\nbatch = 8\nlearning-rate = 1\n\
-             labelled-share = 0.25\nalign-weight = 0\nshared-variance = \"learned\"\ncompare = false\n",
+             labelled-share = 0.25\nalign-weight = 0\nshared-variance = \"learned\"\ncompare = false\n\
+             head-loss = \"nll\"\nposterior-positions = true\n",
         );
         assert_eq!(n, 0);
         assert_eq!(
@@ -351,6 +339,9 @@ mod tests {
         );
         assert_eq!(o.shared_variance, SharedVariance::Learned);
         assert!(!o.compare);
+        assert_eq!(o.head_loss, HeadLoss::Nll);
+        assert!(o.posterior_positions);
+        assert!(toml::from_str::<RawFit>("head-loss = \"mse\"").is_err());
         assert_eq!(parse("latent = 0\nlabelled-share = 1.0\nbatch = 2\n").1, 3);
         assert_eq!(parse("calib-fraction = 0.5\nholdout-fraction = 0.5\n").1, 1);
         assert!(toml::from_str::<RawFit>("epochs = 3").is_err());

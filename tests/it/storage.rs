@@ -79,18 +79,13 @@ fn boto(m: &Moto, code: &str) -> String {
 
 /// Runs the binary with test credentials in the environment only.
 fn actuary_env(args: &[&str]) -> (i32, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_actuary"))
-        .args(args)
-        .env("ACTUARY_QUIET", "1")
-        .env("AWS_ACCESS_KEY_ID", "test")
-        .env("AWS_SECRET_ACCESS_KEY", "secret-that-must-not-leak")
-        .env("AWS_REGION", "us-east-1")
-        .output()
-        .expect("actuary runs");
-    (
-        out.status.code().unwrap_or(-1),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
+    crate::util::actuary_with_env(
+        args,
+        &[
+            ("AWS_ACCESS_KEY_ID", "test"),
+            ("AWS_SECRET_ACCESS_KEY", "secret-that-must-not-leak"),
+            ("AWS_REGION", "us-east-1"),
+        ],
     )
 }
 
@@ -375,17 +370,12 @@ fn azure_py(az: &Azurite, code: &str) -> String {
 
 /// Runs the binary against the emulator (credentials from the environment only).
 fn actuary_azure(az: &Azurite, args: &[&str]) -> (i32, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_actuary"))
-        .args(args)
-        .env("ACTUARY_QUIET", "1")
-        .env("AZURE_STORAGE_USE_EMULATOR", "true")
-        .env("AZURITE_BLOB_STORAGE_URL", &az.url)
-        .output()
-        .expect("actuary runs");
-    (
-        out.status.code().unwrap_or(-1),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
+    crate::util::actuary_with_env(
+        args,
+        &[
+            ("AZURE_STORAGE_USE_EMULATOR", "true"),
+            ("AZURITE_BLOB_STORAGE_URL", &az.url),
+        ],
     )
 }
 
@@ -441,14 +431,12 @@ fn gs_url_without_credentials_is_a_clear_error_naming_the_url() {
     // that gs:// is built in and fails with the URL and the store's reason
     // rather than "not a supported object store URL".
     let tmp = tempfile::tempdir().unwrap();
-    let out = Command::new(env!("CARGO_BIN_EXE_actuary"))
-        .args(["pull", "gs://no-such-bucket/x", s(&tmp.path().join("p"))])
-        .env("ACTUARY_QUIET", "1")
-        .env("GOOGLE_SERVICE_ACCOUNT", tmp.path().join("missing.json"))
-        .output()
-        .expect("actuary runs");
-    let err = String::from_utf8_lossy(&out.stderr);
-    assert_ne!(out.status.code(), Some(0));
+    let missing = tmp.path().join("missing.json");
+    let (code, _, err) = crate::util::actuary_with_env(
+        &["pull", "gs://no-such-bucket/x", s(&tmp.path().join("p"))],
+        &[("GOOGLE_SERVICE_ACCOUNT", s(&missing))],
+    );
+    assert_ne!(code, 0);
     assert!(err.contains("gs://no-such-bucket/x"), "{err}");
     assert!(!err.contains("not a supported object store URL"), "{err}");
 }

@@ -86,9 +86,15 @@ pub fn s(p: &Path) -> &str {
 
 /// Runs the `actuary` binary with `args`; returns (exit code, stdout, stderr).
 pub fn actuary(args: &[&str]) -> (i32, String, String) {
+    actuary_with_env(args, &[])
+}
+
+/// [`actuary`] with extra environment variables (credentials, endpoints).
+pub fn actuary_with_env(args: &[&str], env: &[(&str, &str)]) -> (i32, String, String) {
     let out = Command::new(env!("CARGO_BIN_EXE_actuary"))
         .args(args)
         .env("ACTUARY_QUIET", "1")
+        .envs(env.iter().copied())
         .output()
         .expect("actuary runs");
     (
