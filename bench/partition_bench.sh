@@ -9,7 +9,7 @@
 # each under new names (env, default 9), then decodes the same clips twice through Slurm in
 # one go: as 1 part (one task, 1 CPU) and as 2 parts (two tasks, 1 CPU each),
 # each into a fresh run folder. Wall time is from `actuary submit` to the
-# merged stage manifest; the per-part overhead is that wall time minus the
+# merged stage manifest's appearance (watched with a cheap file test); the per-part overhead is that wall time minus the
 # slowest part's own time (submission, scheduling, start-up and merge).
 # BIN overrides the program (default: target/release/actuary, built if missing).
 set -euo pipefail
@@ -65,14 +65,23 @@ wait_jobs() { # ids...
   while [ -n "$(squeue -h -o %i -j "$ids" 2>/dev/null)" ]; do sleep 0.2; done
 }
 
+# Waits for FILE with a shell test every 0.05 s: polling squeue as often would
+# take CPU from the decoding tasks on a 2-core machine (each call is a process
+# and a request to slurmctld), which hurts the 2-part run more than the 1-part
+# run, whose second core is free.
+wait_file() { # file
+  while [ ! -f "$1" ]; do sleep 0.05; done
+}
+
 measure() { # name parts -> "wall slowest merge frames"
   spec "$1" "$2"
   local t0 t1 out ids
   t0="$(date +%s.%N)"
   out="$(ACTUARY_QUIET=1 "$BIN" submit "$WORK/$1.toml" --until decode)"
   ids="$(echo "$out" | awk '$2 == "job" {print $3}')"
-  wait_jobs $ids
+  wait_file "$WORK/run-$1/decode/manifest.json"
   t1="$(date +%s.%N)"
+  wait_jobs $ids
   python3 - "$WORK/run-$1/decode/manifest.json" "$t0" "$t1" <<'EOF'
 import json, sys
 m = json.load(open(sys.argv[1]))

@@ -3,6 +3,9 @@
 # row-group size, no dictionary/statistics on `image`, PNG bytes precomputed
 # for pyarrow), and label throughput (transitions/s on 2 threads with the fit
 # stage's default network). One run, release build. Needs python3 + pyarrow.
+# Each writer's figure is the best of 3 fresh writes (ACTUARY_BENCH_REPEAT and
+# REPEAT change that); pyarrow is timed without and with an fsync per file
+# (the shard stage syncs each shard before renaming it into place).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 work="${BENCH_DIR:-$(mktemp -d)}"

@@ -1,22 +1,28 @@
 //! Writing the shards: plan the row order (clip order, or a seeded shuffle
-//! across all rows), build one Arrow record batch per row group (frames
-//! PNG-encoded in parallel, in row order), stream the batches through
-//! parquet's `ArrowWriter` into a temporary file while hashing the bytes,
-//! and close the shard once it reaches the target size. A finished shard
-//! replaces the file under its final name only when the bytes differ.
+//! across all rows); on the worker pool, build one Arrow record batch per row
+//! group (frames read with positioned reads and PNG-encoded in parallel) and
+//! encode and compress its columns with parquet's column writers, a few row
+//! groups at a time; on this thread, splice the finished column chunks into a
+//! temporary file in row-group order while hashing the bytes, and close the
+//! shard once it reaches the target size. The bytes are the same as
+//! parquet's `ArrowWriter` writes. A finished shard replaces the file under
+//! its final name only when the bytes differ.
 
 use std::collections::BTreeMap;
 use std::fs;
-use std::io::{self, BufWriter, Write};
+use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use arrow_array::builder::{Float32Builder, ListBuilder};
+use arrow_buffer::{Buffer, OffsetBuffer};
 use arrow_array::{
     ArrayRef, BinaryArray, BooleanArray, Float32Array, Float64Array, RecordBatch, StringArray,
     UInt16Array, UInt32Array,
 };
 use parquet::arrow::ArrowWriter;
+use parquet::arrow::arrow_writer::{ArrowColumnChunk, ArrowRowGroupWriterFactory, compute_leaves};
+use parquet::file::writer::SerializedFileWriter;
 use parquet::basic::{Compression, ZstdLevel};
 use parquet::file::properties::{EnabledStatistics, WriterProperties};
 use parquet::schema::types::ColumnPath;
@@ -261,58 +267,73 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
     let groups: Vec<&[(u32, u32)]> = order
         .chunks(job.opts.row_group_rows.max(1) as usize)
         .collect();
-    let mut write_all = |batches: std::sync::mpsc::Receiver<Result<RecordBatch, ShardError>>| -> Result<(), ShardError> {
-    for group in groups.iter().copied() {
-        // Batches arrive in row-group order from the encoding thread.
-        let batch = batches.recv().expect("one batch per row group")?;
-        for &(ci, f) in group {
-            let c = &clips[ci as usize];
-            *rows_per_set.entry(c.rec.set.clone()).or_default() += 1;
-            if let Some(v) = c.labels.confidence.get(f as usize) {
-                conf.0 += 1;
-                conf.1 += *v as f64;
+    // Row groups are built and compressed on the pool, at most `depth` at a
+    // time (images encoded in parallel inside each); this thread splices the
+    // finished column chunks into the shard in row-group order.
+    let factory = column_writer_factory(&props)?;
+    let depth = job.threads.max(1) * 2;
+    let (token_tx, token_rx) = std::sync::mpsc::sync_channel::<()>(depth);
+    for _ in 0..depth {
+        token_tx.send(()).expect("room for every token");
+    }
+    let (done_tx, done_rx) = std::sync::mpsc::channel::<(usize, Result<EncodedGroup, ShardError>)>();
+    let mut write_all = |token_tx: std::sync::mpsc::SyncSender<()>| -> Result<(), ShardError> {
+        let mut early: BTreeMap<usize, Result<EncodedGroup, ShardError>> = BTreeMap::new();
+        for (g, group) in groups.iter().copied().enumerate() {
+            let encoded = loop {
+                if let Some(e) = early.remove(&g) {
+                    break e;
+                }
+                let (i, e) = done_rx.recv().expect("every row group is encoded or failed");
+                early.insert(i, e);
+            }?;
+            for &(ci, f) in group {
+                let c = &clips[ci as usize];
+                *rows_per_set.entry(c.rec.set.clone()).or_default() += 1;
+                if let Some(v) = c.labels.confidence.get(f as usize) {
+                    conf.0 += 1;
+                    conf.1 += *v as f64;
+                }
+            }
+            if current.is_none() {
+                current = Some(OpenShard::create(job.shard_dir, shards.len(), &props)?);
+            }
+            let open = current.as_mut().expect("just opened");
+            open.append(encoded)?;
+            let _ = token_tx.send(());
+            if open.writer.bytes_written() >= target {
+                let (file, same) = current.take().expect("open").finish()?;
+                unchanged += same as u64;
+                shards.push(file);
             }
         }
-        if current.is_none() {
-            current = Some(OpenShard::create(job.shard_dir, shards.len(), &props)?);
-        }
-        let open = current.as_mut().expect("just opened");
-        open.write(&batch)?;
-        if open.writer.bytes_written() >= target {
-            let (file, same) = current.take().expect("open").finish()?;
+        if let Some(open) = current.take() {
+            let (file, same) = open.finish()?;
             unchanged += same as u64;
             shards.push(file);
         }
-    }
-    if let Some(open) = current.take() {
-        let (file, same) = open.finish()?;
-        unchanged += same as u64;
-        shards.push(file);
-    }
-    Ok(())
+        Ok(())
     };
-    // Encode the next row group's images while this one is compressed and written.
     let result = std::thread::scope(|scope| {
-        let (tx, rx) = std::sync::mpsc::sync_channel(1);
-        let (clips, groups, image) = (&clips, &groups, job.opts.image);
-        let pool = &pool;
+        let (clips, groups, image, factory, pool) = (&clips, &groups, job.opts.image, &factory, &pool);
         scope.spawn(move || {
-            for (g, group) in groups.iter().enumerate() {
-                let batch = pool.install(|| build_batch(clips, group, image, g));
-                // Unmap the frame pages this group read (see FrameReader::release).
-                let mut touched: Vec<u32> = group.iter().map(|&(ci, _)| ci).collect();
-                touched.sort_unstable();
-                touched.dedup();
-                for ci in touched {
-                    clips[ci as usize].frames.release();
+            pool.in_place_scope(|s| {
+                for (g, &group) in groups.iter().enumerate() {
+                    // A token comes back each time a group is written; none
+                    // when the writer stopped.
+                    if token_rx.recv().is_err() {
+                        break;
+                    }
+                    let done = done_tx.clone();
+                    s.spawn(move |_| {
+                        let r = build_batch(clips, group, image, g)
+                            .and_then(|batch| encode_group(factory, &batch, g));
+                        let _ = done.send((g, r));
+                    });
                 }
-                let failed = batch.is_err();
-                if tx.send(batch).is_err() || failed {
-                    break;
-                }
-            }
+            });
         });
-        write_all(rx)
+        write_all(token_tx)
     });
     if let Err(e) = result {
         if let Some(open) = current.take() {
@@ -397,6 +418,55 @@ fn remove_stale(dir: &Path, shards: &[ShardFile]) -> Result<(), ShardError> {
     Ok(())
 }
 
+/// A `binary` column holds at most `i32::MAX` bytes per row group.
+fn fits_in_binary_array(bytes: usize, g: usize) -> Result<(), ShardError> {
+    if bytes > i32::MAX as usize {
+        return Err(ShardError::ImageBytes { group: g, bytes });
+    }
+    Ok(())
+}
+
+/// The raw RGB frames of a row group, read straight into one values buffer.
+fn raw_images(clips: &[Clip], group: &[(u32, u32)], g: usize) -> Result<BinaryArray, ShardError> {
+    let frame_bytes = clips.first().map_or(0, |c| c.frames.frame_bytes());
+    fits_in_binary_array(group.len() * frame_bytes, g)?;
+    let mut values = vec![0u8; group.len() * frame_bytes];
+    if frame_bytes > 0 {
+        values
+            .par_chunks_mut(frame_bytes)
+            .zip(group.par_iter())
+            .try_for_each(|(out, &(ci, f))| clips[ci as usize].frames.read_into(f as usize, out))?;
+    }
+    let offsets = OffsetBuffer::from_lengths(std::iter::repeat_n(frame_bytes, group.len()));
+    Ok(BinaryArray::new(offsets, Buffer::from_vec(values), None))
+}
+
+/// The frames of a row group, PNG-encoded in parallel.
+fn png_images(clips: &[Clip], group: &[(u32, u32)], g: usize) -> Result<BinaryArray, ShardError> {
+    let pngs: Vec<Vec<u8>> = group
+        .par_iter()
+        .map_init(Vec::new, |rgb, &(ci, f)| {
+            let c = &clips[ci as usize];
+            rgb.resize(c.frames.frame_bytes(), 0);
+            c.frames.read_into(f as usize, rgb)?;
+            crate::export::encode_png(rgb, c.rec.width, c.rec.height).map_err(|e| ShardError::Png {
+                set: c.rec.set.clone(),
+                id: c.rec.id.clone(),
+                frame: f,
+                message: e.to_string(),
+            })
+        })
+        .collect::<Result<_, _>>()?;
+    let bytes = pngs.iter().map(Vec::len).sum();
+    fits_in_binary_array(bytes, g)?;
+    let mut values = Vec::with_capacity(bytes);
+    for p in &pngs {
+        values.extend_from_slice(p);
+    }
+    let offsets = OffsetBuffer::from_lengths(pngs.iter().map(Vec::len));
+    Ok(BinaryArray::new(offsets, Buffer::from_vec(values), None))
+}
+
 /// The record batch of one row group.
 fn build_batch(
     clips: &[Clip],
@@ -404,27 +474,10 @@ fn build_batch(
     image: ImageEncoding,
     g: usize,
 ) -> Result<RecordBatch, ShardError> {
-    let images: Vec<Vec<u8>> = group
-        .par_iter()
-        .map(|&(ci, f)| {
-            let c = &clips[ci as usize];
-            let rgb = c.frames.frame(f as usize);
-            match image {
-                ImageEncoding::Raw => Ok(rgb.to_vec()),
-                ImageEncoding::Png => crate::export::encode_png(rgb, c.rec.width, c.rec.height)
-                    .map_err(|e| ShardError::Png {
-                        set: c.rec.set.clone(),
-                        id: c.rec.id.clone(),
-                        frame: f,
-                        message: e.to_string(),
-                    }),
-            }
-        })
-        .collect::<Result<_, _>>()?;
-    let bytes: usize = images.iter().map(Vec::len).sum();
-    if bytes > i32::MAX as usize {
-        return Err(ShardError::ImageBytes { group: g, bytes });
-    }
+    let images = match image {
+        ImageEncoding::Raw => raw_images(clips, group, g)?,
+        ImageEncoding::Png => png_images(clips, group, g)?,
+    };
     let n = group.len();
     let row = |&(ci, f): &(u32, u32)| (&clips[ci as usize], f as usize);
     let mut action = ListBuilder::with_capacity(Float32Builder::with_capacity(n * 4), n);
@@ -467,7 +520,7 @@ fn build_batch(
             let (c, f) = row(r);
             c.rec.time_of(f as u32)
         }))),
-        Arc::new(BinaryArray::from_iter_values(images.iter())),
+        Arc::new(images),
         Arc::new(action.finish()),
         Arc::new(est.finish()),
         Arc::new(std.finish()),
@@ -484,16 +537,88 @@ fn build_batch(
     })
 }
 
-/// A writer that hashes and counts what passes through.
+/// One row group's column chunks, encoded and compressed, ready to append.
+struct EncodedGroup {
+    chunks: Vec<ArrowColumnChunk>,
+    rows: usize,
+}
+
+/// A factory of column writers with the shards' schema and properties.
+fn column_writer_factory(props: &WriterProperties) -> Result<ArrowRowGroupWriterFactory, ShardError> {
+    ArrowWriter::try_new(io::sink(), schema(), Some(props.clone()))
+        .and_then(ArrowWriter::into_serialized_writer)
+        .map(|(_, factory)| factory)
+        .map_err(|e| ShardError::Parquet {
+            path: PathBuf::from("(column writers)"),
+            message: e.to_string(),
+        })
+}
+
+/// Encodes and compresses every column of one row group.
+fn encode_group(
+    factory: &ArrowRowGroupWriterFactory,
+    batch: &RecordBatch,
+    g: usize,
+) -> Result<EncodedGroup, ShardError> {
+    let err = |e: parquet::errors::ParquetError| ShardError::Parquet {
+        path: PathBuf::from(format!("row group {g}")),
+        message: e.to_string(),
+    };
+    let mut writers = factory.create_column_writers(g).map_err(err)?;
+    let mut next = writers.iter_mut();
+    for (array, field) in batch.columns().iter().zip(batch.schema().fields()) {
+        for leaf in compute_leaves(field, array).map_err(err)? {
+            next.next()
+                .expect("one column writer per leaf")
+                .write(&leaf)
+                .map_err(err)?;
+        }
+    }
+    let chunks = writers
+        .into_iter()
+        .map(|w| w.close())
+        .collect::<Result<_, _>>()
+        .map_err(err)?;
+    Ok(EncodedGroup {
+        chunks,
+        rows: batch.num_rows(),
+    })
+}
+
+/// Bytes between two requests to start writing the file back to disk.
+const WRITEBACK_STEP: u64 = 8 << 20;
+
+/// A writer that hashes what passes through. Parquet's own writer buffers
+/// small writes; pages reach the file in one write each, uncopied. Every
+/// [`WRITEBACK_STEP`] bytes it asks the kernel to start writing the new bytes
+/// to disk, so that the `fsync` before the rename has little left to wait for.
 struct HashingFile {
-    inner: BufWriter<fs::File>,
+    inner: fs::File,
     hasher: Sha256,
+    written: u64,
+    writeback_from: u64,
+}
+
+impl HashingFile {
+    fn new(inner: fs::File) -> Self {
+        Self {
+            inner,
+            hasher: Sha256::new(),
+            written: 0,
+            writeback_from: 0,
+        }
+    }
 }
 
 impl Write for HashingFile {
     fn write(&mut self, buf: &[u8]) -> io::Result<usize> {
         let n = self.inner.write(buf)?;
         self.hasher.update(&buf[..n]);
+        self.written += n as u64;
+        if self.written - self.writeback_from >= WRITEBACK_STEP {
+            start_writeback(&self.inner, self.writeback_from, self.written);
+            self.writeback_from = self.written;
+        }
         Ok(n)
     }
     fn flush(&mut self) -> io::Result<()> {
@@ -501,8 +626,30 @@ impl Write for HashingFile {
     }
 }
 
+/// Asks the kernel to start writing bytes `from..to` of `file` back to disk
+/// without waiting (Linux `sync_file_range` with `SYNC_FILE_RANGE_WRITE`); a
+/// hint only, so a failure is ignored: the `fsync` at the end still waits for
+/// every byte.
+#[cfg(target_os = "linux")]
+fn start_writeback(file: &fs::File, from: u64, to: u64) {
+    use std::os::fd::AsRawFd;
+    // SAFETY: the descriptor is open for the duration of the call; the call
+    // reads no memory of ours.
+    unsafe {
+        libc::sync_file_range(
+            file.as_raw_fd(),
+            from as libc::off64_t,
+            (to - from) as libc::off64_t,
+            libc::SYNC_FILE_RANGE_WRITE,
+        );
+    }
+}
+
+#[cfg(not(target_os = "linux"))]
+fn start_writeback(_file: &fs::File, _from: u64, _to: u64) {}
+
 struct OpenShard {
-    writer: ArrowWriter<HashingFile>,
+    writer: SerializedFileWriter<HashingFile>,
     tmp: PathBuf,
     path: PathBuf,
     name: String,
@@ -516,16 +663,16 @@ impl OpenShard {
         let path = dir.join(&name);
         let tmp = crate::store::atomic::temp_path(&path);
         let file = fs::File::create(&tmp).map_err(io_at(&tmp))?;
-        let sink = HashingFile {
-            inner: BufWriter::with_capacity(1 << 20, file),
-            hasher: Sha256::new(),
+        let sink = HashingFile::new(file);
+        let err = |e: parquet::errors::ParquetError| ShardError::Parquet {
+            path: path.clone(),
+            message: e.to_string(),
         };
-        let writer = ArrowWriter::try_new(sink, schema(), Some(props.clone())).map_err(|e| {
-            ShardError::Parquet {
-                path: path.clone(),
-                message: e.to_string(),
-            }
-        })?;
+        // The Arrow writer adds the Arrow schema to the file's metadata; its
+        // serialized writer then takes the column chunks encoded elsewhere.
+        let (writer, _) = ArrowWriter::try_new(sink, schema(), Some(props.clone()))
+            .and_then(ArrowWriter::into_serialized_writer)
+            .map_err(err)?;
         Ok(Self {
             writer,
             tmp,
@@ -536,18 +683,18 @@ impl OpenShard {
         })
     }
 
-    fn write(&mut self, batch: &RecordBatch) -> Result<(), ShardError> {
+    /// Appends one encoded row group.
+    fn append(&mut self, group: EncodedGroup) -> Result<(), ShardError> {
         let err = |e: parquet::errors::ParquetError| ShardError::Parquet {
             path: self.path.clone(),
             message: e.to_string(),
         };
-        self.writer.write(batch).map_err(err)?;
-        // One batch is one row group.
-        self.writer.flush().map_err(|e| ShardError::Parquet {
-            path: self.path.clone(),
-            message: e.to_string(),
-        })?;
-        self.rows += batch.num_rows() as u64;
+        let mut row_group = self.writer.next_row_group().map_err(err)?;
+        for chunk in group.chunks {
+            chunk.append_to_row_group(&mut row_group).map_err(err)?;
+        }
+        row_group.close().map_err(err)?;
+        self.rows += group.rows as u64;
         self.groups += 1;
         Ok(())
     }
@@ -567,11 +714,11 @@ impl OpenShard {
                 path: path.clone(),
                 message: e.to_string(),
             })?;
-            let HashingFile { inner, hasher } = sink;
-            let file = inner.into_inner().map_err(|e| ShardError::Io {
-                path: tmp.clone(),
-                source: e.into_error(),
-            })?;
+            let HashingFile {
+                inner: file,
+                hasher,
+                ..
+            } = sink;
             file.sync_all().map_err(io_at(&tmp))?;
             let bytes = file.metadata().map_err(io_at(&tmp))?.len();
             drop(file);
