@@ -1,0 +1,93 @@
+#!/usr/bin/env python3
+"""Holdout coverage under other conformal scores (an evaluation, not a test).
+
+Usage: python3 bench/coverage_scores.py RUN
+
+Reads RUN/shard/*.parquet and RUN/label/calibration.json of a finished run,
+recovers each labelled transition's uncalibrated std (action_std * z / q, as
+the label stage stored it), and re-runs split conformal calibration on the
+`calib` clips with other nonconformity scores, measuring 90% coverage on the
+`holdout` clips, overall and on the worst-covered clip:
+
+  - normalised |a - est| / std (what the label stage uses);
+  - absolute |a - est| (constant-width intervals);
+  - regularised |a - est| / (std + b * median calib std), b in 0.1 .. 2
+    (the normalised nonconformity measure with a sensitivity parameter;
+    Papadopoulos, Vovk & Gammerman 2011, "Regression conformal prediction
+    with nearest neighbours", JAIR 40);
+  - |a - est| / sqrt(std);
+  - |a - est| / (std + b * |est|), errors that grow with the action's size
+    (a choice of b read off these holdout figures would be tuned on the
+    evaluation clips, so it only shows the trade-off).
+
+It also prints per-clip coverage on calib and holdout under the normalised
+score, which shows whether a shortfall is one of the score or of the clips.
+"""
+import json
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyarrow.dataset as ds
+
+run = Path(sys.argv[1] if len(sys.argv) > 1 else "runs/tabletop")
+cal = json.loads((run / "label/calibration.json").read_text())
+z, alpha = cal["z"], cal["alpha"]
+qs = np.array([d["quantile"]["q"] for d in cal["dims"]])
+names = [d["dim"] for d in cal["dims"]]
+files = sorted(str(p) for p in (run / "shard").glob("*.parquet"))
+t = ds.dataset(files, format="parquet").to_table(
+    columns=["clip", "split", "labelled", "action", "action_est", "action_std"]).to_pydict()
+keep = [i for i in range(len(t["clip"]))
+        if t["labelled"][i] and t["split"][i] in ("calib", "holdout")
+        and t["action"][i] is not None and t["action_est"][i] is not None]
+A = np.array([t["action"][i] for i in keep])
+E = np.array([t["action_est"][i] for i in keep])
+S = np.array([t["action_std"][i] for i in keep])
+split = np.array([t["split"][i] for i in keep])
+clips = np.array([t["clip"][i] for i in keep])
+raw = S * z / qs
+err = np.abs(A - E)
+calib, hold = split == "calib", split == "holdout"
+
+
+def conformal_q(scores):
+    """Split conformal quantile: the ceil((n+1)(1-alpha))-th smallest score."""
+    n = len(scores)
+    return np.sort(scores)[math.ceil((n + 1) * (1 - alpha) - 1e-9) - 1]
+
+
+def coverage(mask, d, q, den):
+    return float((err[mask, d] <= q * den[mask]).mean())
+
+
+def variant(name, denom):
+    cells = []
+    for d, dim in enumerate(names):
+        den = denom(d)
+        q = conformal_q(err[calib, d] / den[calib])
+        per = [coverage(hold & (clips == c), d, q, den) for c in sorted(set(clips[hold]))]
+        cells.append(f"{dim} {coverage(hold, d, q, den):.3f} (worst clip {min(per):.2f})")
+    print(f"| {name} | " + " | ".join(cells) + " |")
+
+
+print(f"holdout coverage at nominal {1 - alpha:.2f} ({hold.sum()} holdout, {calib.sum()} calib transitions)")
+print("| score | " + " | ".join(names) + " |")
+print("| --- |" + " --- |" * len(names))
+variant("normalised (used)", lambda d: raw[:, d])
+variant("absolute", lambda d: np.ones(len(raw)))
+for b in (0.1, 0.25, 0.5, 1.0, 2.0):
+    variant(f"regularised, b = {b}", lambda d, b=b: raw[:, d] + b * np.median(raw[calib, d]))
+variant("sqrt(std)", lambda d: np.sqrt(raw[:, d]))
+for b in (0.1, 0.3, 0.5):
+    variant(f"std + {b} * abs(est)", lambda d, b=b: raw[:, d] + b * np.abs(E[:, d]))
+print("\nper clip: transitions, mean |action|, mean |error|, mean uncalibrated std, coverage (normalised score)")
+for d, dim in enumerate(names):
+    q = conformal_q(err[calib, d] / raw[calib, d])
+    print(f"| {dim}: clip | split | n | mean abs action | mean abs error | mean std | coverage |")
+    print("| --- | --- | --- | --- | --- | --- | --- |")
+    for c in sorted(set(clips)):
+        m = clips == c
+        print(f"| {c} | {split[m][0]} | {m.sum()} | {np.abs(A[m, d]).mean():.3f} | {err[m, d].mean():.3f} "
+              f"| {raw[m, d].mean():.3f} | {coverage(m, d, q, raw[:, d]):.2f} |")
