@@ -38,6 +38,11 @@ for row in metrics["comparison"]:
 cal = json.loads((run / "label/calibration.json").read_text())
 print(f"\nholdout coverage at nominal {1 - cal['alpha']:.2f}: "
       + ", ".join(f"{d['dim']} {d['holdout_coverage']:.3f}" for d in cal["dims"]))
+if cal.get("calib_motion_range"):
+    print("holdout coverage on clips inside the calib motion range: "
+          + ", ".join(f"{d['dim']} {d['holdout_coverage_in_range']:.3f}" for d in cal["dims"]
+                      if d.get("holdout_coverage_in_range") is not None)
+          + f" (beyond it: {', '.join(cal['holdout_beyond_range']) or 'none'})")
 rel = cal["holdout_reliability"]
 print(f"confidence on holdout: ECE {rel['ece']:.3f}, mean confidence {rel['mean_confidence']:.3f}, "
       f"accuracy {rel['accuracy']:.3f} (n {rel['n']})")

@@ -18,6 +18,7 @@ pub mod fitted;
 pub mod inspect;
 pub mod kmeans;
 pub mod model;
+pub mod motion_range;
 pub mod output;
 pub mod reliability;
 pub mod stage;

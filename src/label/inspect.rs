@@ -77,8 +77,8 @@ impl LabelInspection {
         for (name, s) in &self.sets {
             let _ = writeln!(
                 out,
-                "  set {name:<16} {:>5} clips {:>8} transitions  mean confidence {:.3}  ood {:.3}",
-                s.clips, s.transitions, s.mean_confidence, s.ood_rate
+                "  set {name:<16} {:>5} clips {:>8} transitions  mean confidence {:.3}  ood {:.3}  beyond calib motion range {}",
+                s.clips, s.transitions, s.mean_confidence, s.ood_rate, s.beyond_calib_range
             );
         }
         let used = self.codes.codes.iter().filter(|c| c.count > 0).count();

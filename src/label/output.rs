@@ -83,6 +83,10 @@ pub struct DimCalibration {
     pub calib_coverage: f64,
     /// Mean calibrated std on holdout transitions.
     pub holdout_mean_std: Option<f64>,
+    /// Coverage on the holdout clips inside the calib clips' motion range
+    /// (none without such clips; see [`super::motion_range`]).
+    #[serde(default)]
+    pub holdout_coverage_in_range: Option<f64>,
 }
 
 /// The calibration figures (`calibration.json`).
@@ -112,6 +116,13 @@ pub struct CalibrationFigures {
     pub ood_threshold: f64,
     /// Fraction of holdout transitions flagged ood.
     pub holdout_ood_rate: Option<f64>,
+    /// Per dimension, the largest mean |action_est| of a calib clip: the
+    /// motion range calibration saw ([`super::motion_range`]).
+    #[serde(default)]
+    pub calib_motion_range: Vec<f64>,
+    /// Holdout clips that move more than the range in some dimension.
+    #[serde(default)]
+    pub holdout_beyond_range: Vec<String>,
 }
 
 /// The fitted state of a label run (`state.json`).

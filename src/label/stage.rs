@@ -30,6 +30,7 @@ use serde::Serialize;
 use super::conformal::{self, ConformalQuantile};
 use super::kmeans::{KMeans, KMeansSettings};
 use super::model::{FitOutputs, Split, Standardisation, TransitionModel};
+use super::motion_range;
 use super::output::{
     CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodeRow, CodesTable,
     DimCalibration, LabelState, STATE_FILE, decoded_clips,
@@ -82,6 +83,10 @@ pub struct SetSummary {
     pub mean_confidence: f64,
     /// Fraction flagged ood.
     pub ood_rate: f64,
+    /// Clips that move more than every calib clip in some dimension (their
+    /// intervals may cover less than nominal; see [`super::motion_range`]).
+    #[serde(default)]
+    pub beyond_calib_range: u64,
 }
 
 /// What a label run did.
@@ -249,6 +254,10 @@ fn run_passes(
         };
         let s = sets.entry(clip.rec.set.clone()).or_default();
         s.clips += 1;
+        let size = motion_range::motion_size(labels.action_est.iter().map(Vec::as_slice), a);
+        if !motion_range::beyond(&size, &state.calibration.calib_motion_range).is_empty() {
+            s.beyond_calib_range += 1;
+        }
         for i in 0..labels.code.len() {
             let c = labels.code[i] as usize;
             count[c] += 1;
@@ -569,27 +578,49 @@ fn actions_of<'c>(clip: &'c Clip<'_>) -> Result<&'c [Vec<f32>], LabelError> {
 type Scored = Vec<(RawTransition, Vec<f64>)>;
 
 /// Decode-grid outputs and recorded actions of every transition of `split`
-/// clips, and the number of model-time transitions inferred.
+/// clips, each clip's id and row count (in order), and the number of
+/// model-time transitions inferred.
 fn labelled_split(
     job: &LabelJob<'_>,
     model: &dyn TransitionModel,
     rules: &[MapRule],
     clips: &[Clip<'_>],
     split: Split,
-) -> Result<(Scored, u64), LabelError> {
+) -> Result<(Scored, Vec<(String, usize)>, u64), LabelError> {
     let mut out = Vec::new();
+    let mut rows = Vec::new();
     let mut inferred = 0u64;
     for clip in clips.iter().filter(|c| c.rec.labelled && c.split == split) {
         let actions = actions_of(clip)?;
         let (raw, n) = infer_decode(job, model, rules, clip)?;
         inferred += n as u64;
+        rows.push((clip.rec.id.clone(), raw.len()));
         out.extend(
             raw.into_iter()
                 .zip(actions)
                 .map(|(r, a)| (r, a.iter().map(|v| *v as f64).collect())),
         );
     }
-    Ok((out, inferred))
+    Ok((out, rows, inferred))
+}
+
+/// Each clip's motion size ([`motion_range::motion_size`]) from its rows of
+/// `scored`, in order, measured on the estimates as the labels files store
+/// them (`f32`), so that a clip's size is the same here and when the label
+/// pass reads it back.
+fn clip_sizes(scored: &Scored, rows: &[(String, usize)], dims: usize) -> Vec<Vec<f64>> {
+    let mut start = 0;
+    rows.iter()
+        .map(|(_, n)| {
+            let stored: Vec<Vec<f32>> = scored[start..start + n]
+                .iter()
+                .map(|(r, _)| r.est.iter().map(|v| *v as f32).collect())
+                .collect();
+            let size = motion_range::motion_size(stored.iter().map(Vec::as_slice), dims);
+            start += n;
+            size
+        })
+        .collect()
 }
 
 /// Fits quantiles, the confidence map, the ood threshold and the codes.
@@ -602,7 +633,8 @@ fn fit_state(
     let opts = job.opts;
     let st: Standardisation = model.standardisation().clone();
     let a = st.dims.len();
-    let (calib, calib_inferred) = labelled_split(job, model, rules, clips, Split::Calib)?;
+    let (calib, calib_rows, calib_inferred) =
+        labelled_split(job, model, rules, clips, Split::Calib)?;
     let needed = conformal::min_points(opts.alpha);
     if calib.len() < needed {
         return Err(LabelError::TooFewCalib {
@@ -611,7 +643,22 @@ fn fit_state(
             alpha: opts.alpha,
         });
     }
-    let (holdout, holdout_inferred) = labelled_split(job, model, rules, clips, Split::Holdout)?;
+    let (holdout, holdout_rows, holdout_inferred) =
+        labelled_split(job, model, rules, clips, Split::Holdout)?;
+    let motion_range = motion_range::range_of(&clip_sizes(&calib, &calib_rows, a), a);
+    // Holdout rows of clips inside the calib clips' motion range.
+    let mut in_range = Vec::with_capacity(holdout.len());
+    let mut holdout_beyond_range = Vec::new();
+    for ((id, n), size) in holdout_rows
+        .iter()
+        .zip(clip_sizes(&holdout, &holdout_rows, a))
+    {
+        let inside = motion_range::beyond(&size, &motion_range).is_empty();
+        if !inside {
+            holdout_beyond_range.push(id.clone());
+        }
+        in_range.extend(std::iter::repeat_n(inside, *n));
+    }
     let z = normal_quantile(1.0 - opts.alpha / 2.0);
     let quantiles: Vec<ConformalQuantile> = (0..a)
         .map(|d| {
@@ -636,6 +683,7 @@ fn fit_state(
                 holdout_coverage: None,
                 calib_coverage: 0.0,
                 holdout_mean_std: None,
+                holdout_coverage_in_range: None,
             })
             .collect(),
         calib_transitions: calib.len() as u64,
@@ -648,6 +696,8 @@ fn fit_state(
             .map(|(r, _)| r.disagreement)
             .fold(0.0, f64::max),
         holdout_ood_rate: None,
+        calib_motion_range: motion_range,
+        holdout_beyond_range,
     };
     let q: Vec<f64> = quantiles.iter().map(|x| x.q).collect();
     let within = |f: &Final, act: &[f64]| (0..a).all(|d| (act[d] - f.est[d]).abs() <= tolerance[d]);
@@ -696,6 +746,15 @@ fn fit_state(
                 .filter(|(f, (_, act))| covered(f, act, d))
                 .count();
             cal.dims[d].holdout_coverage = Some(c as f64 / n);
+            let (mut hits_in, mut rows_in) = (0usize, 0usize);
+            for ((f, (_, act)), inside) in fin.iter().zip(&holdout).zip(&in_range) {
+                if *inside {
+                    rows_in += 1;
+                    hits_in += covered(f, act, d) as usize;
+                }
+            }
+            cal.dims[d].holdout_coverage_in_range =
+                (rows_in > 0).then(|| hits_in as f64 / rows_in as f64);
             cal.dims[d].holdout_mean_std = Some(fin.iter().map(|f| f.std[d]).sum::<f64>() / n);
         }
         let conf: Vec<f64> = fin.iter().map(|f| f.confidence).collect();

@@ -8,6 +8,7 @@ use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use super::figures::*;
+use crate::label::motion_range;
 use crate::label::output::{
     CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodesTable,
 };
@@ -435,6 +436,7 @@ fn label_section(
                     mean_confidence: None,
                     ood_share: None,
                     confidence_hist: vec![0; 10],
+                    beyond_calib_range: 0,
                 },
                 0.0,
                 0,
@@ -442,6 +444,13 @@ fn label_section(
         });
         entry.0.clips += 1;
         entry.0.transitions += l.confidence.len() as u64;
+        let size = motion_range::motion_size(
+            l.action_est.iter().map(Vec::as_slice),
+            calib.calib_motion_range.len(),
+        );
+        if !motion_range::beyond(&size, &calib.calib_motion_range).is_empty() {
+            entry.0.beyond_calib_range += 1;
+        }
         for &c in &l.confidence {
             entry.1 += c as f64;
             entry.0.confidence_hist[((c.clamp(0.0, 1.0) * 10.0) as usize).min(9)] += 1;
@@ -515,11 +524,14 @@ fn label_section(
                 holdout: d.holdout_coverage,
                 calib: d.calib_coverage,
                 quantile: Some(d.quantile.q).filter(|q| q.is_finite()),
+                holdout_in_range: d.holdout_coverage_in_range,
             })
             .collect(),
         confidence_method: calib.confidence_method.clone(),
         reliability: calib.holdout_reliability.clone(),
         holdout_ood_share: calib.holdout_ood_rate,
+        calib_motion_range: calib.calib_motion_range.clone(),
+        holdout_beyond_range: calib.holdout_beyond_range.clone(),
         sets,
         codes: codes_use,
         code_examples,

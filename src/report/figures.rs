@@ -300,6 +300,10 @@ pub struct LabelSet {
     pub ood_share: Option<f64>,
     /// Confidence histogram: counts in 10 equal bins over [0, 1].
     pub confidence_hist: Vec<u64>,
+    /// Clips that move more than every calib clip in some dimension
+    /// (`crate::label::motion_range`).
+    #[serde(default)]
+    pub beyond_calib_range: u64,
 }
 
 /// Coverage of one dimension's interval.
@@ -313,6 +317,9 @@ pub struct CoverageDim {
     pub calib: f64,
     /// Conformal quantile (none when not finite: too few calib points).
     pub quantile: Option<f64>,
+    /// Holdout coverage on the clips inside the calib clips' motion range.
+    #[serde(default)]
+    pub holdout_in_range: Option<f64>,
 }
 
 /// A code's use.
@@ -377,6 +384,12 @@ pub struct LabelFigures {
     pub reliability: crate::label::reliability::Reliability,
     /// Holdout share flagged out of distribution.
     pub holdout_ood_share: Option<f64>,
+    /// Per dimension, the largest mean |action_est| of a calib clip.
+    #[serde(default)]
+    pub calib_motion_range: Vec<f64>,
+    /// Holdout clips beyond that range.
+    #[serde(default)]
+    pub holdout_beyond_range: Vec<String>,
     /// Per set.
     pub sets: Vec<LabelSet>,
     /// Every code, by code number.

@@ -498,6 +498,7 @@ pub fn label(h: &mut String, g: &Gathered) {
             vec![
                 esc(&c.dim),
                 num(c.holdout, 3),
+                num(c.holdout_in_range, 3),
                 num(Some(c.calib), 3),
                 num(Some(nominal), 3),
                 num(c.quantile, 3),
@@ -509,6 +510,7 @@ pub fn label(h: &mut String, g: &Gathered) {
         &[
             "dimension",
             "holdout coverage",
+            "holdout, clips in calib motion range",
             "calib coverage",
             "nominal",
             "conformal quantile",
@@ -526,6 +528,7 @@ pub fn label(h: &mut String, g: &Gathered) {
                 s.transitions.to_string(),
                 num(s.mean_confidence, 3),
                 num(s.ood_share, 3),
+                s.beyond_calib_range.to_string(),
             ]
         })
         .collect();
@@ -538,6 +541,7 @@ pub fn label(h: &mut String, g: &Gathered) {
             "transitions",
             "mean confidence",
             "ood share",
+            "clips beyond calib motion range",
         ],
         &rows,
     );

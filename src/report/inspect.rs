@@ -337,11 +337,30 @@ fn label(o: &mut String, f: &RunFigures) {
     for c in &l.coverage {
         let _ = writeln!(
             o,
-            "  coverage {:<8} holdout {} calib {:.3} quantile {}",
+            "  coverage {:<8} holdout {} (clips in calib motion range {}) calib {:.3} quantile {}",
             c.dim,
             num(c.holdout, 3),
+            num(c.holdout_in_range, 3),
             c.calib,
             num(c.quantile, 3)
+        );
+    }
+    if !l.calib_motion_range.is_empty() {
+        let range: Vec<String> = l
+            .dims
+            .iter()
+            .zip(&l.calib_motion_range)
+            .map(|(d, r)| format!("{d} {r:.3}"))
+            .collect();
+        let _ = writeln!(
+            o,
+            "  calib motion range (largest clip mean |action_est|): {}; holdout clips beyond it: {}",
+            range.join(", "),
+            if l.holdout_beyond_range.is_empty() {
+                "none".to_string()
+            } else {
+                l.holdout_beyond_range.join(", ")
+            }
         );
     }
     let r = &l.reliability;
@@ -364,12 +383,13 @@ fn label(o: &mut String, f: &RunFigures) {
     for s in &l.sets {
         let _ = writeln!(
             o,
-            "  set {:<12} clips {:>4} transitions {:>7} mean confidence {} ood share {}",
+            "  set {:<12} clips {:>4} transitions {:>7} mean confidence {} ood share {} beyond calib motion range {} clips",
             s.set,
             s.clips,
             s.transitions,
             num(s.mean_confidence, 3),
-            num(s.ood_share, 3)
+            num(s.ood_share, 3),
+            s.beyond_calib_range
         );
     }
     let used = l.codes.iter().filter(|c| c.count > 0).count();

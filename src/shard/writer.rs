@@ -15,16 +15,16 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use arrow_array::builder::{Float32Builder, ListBuilder};
-use arrow_buffer::{Buffer, OffsetBuffer};
 use arrow_array::{
     ArrayRef, BinaryArray, BooleanArray, Float32Array, Float64Array, RecordBatch, StringArray,
     UInt16Array, UInt32Array,
 };
+use arrow_buffer::{Buffer, OffsetBuffer};
 use parquet::arrow::ArrowWriter;
 use parquet::arrow::arrow_writer::{ArrowColumnChunk, ArrowRowGroupWriterFactory, compute_leaves};
-use parquet::file::writer::SerializedFileWriter;
 use parquet::basic::{Compression, ZstdLevel};
 use parquet::file::properties::{EnabledStatistics, WriterProperties};
+use parquet::file::writer::SerializedFileWriter;
 use parquet::schema::types::ColumnPath;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
@@ -276,7 +276,8 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
     for _ in 0..depth {
         token_tx.send(()).expect("room for every token");
     }
-    let (done_tx, done_rx) = std::sync::mpsc::channel::<(usize, Result<EncodedGroup, ShardError>)>();
+    let (done_tx, done_rx) =
+        std::sync::mpsc::channel::<(usize, Result<EncodedGroup, ShardError>)>();
     let mut write_all = |token_tx: std::sync::mpsc::SyncSender<()>| -> Result<(), ShardError> {
         let mut early: BTreeMap<usize, Result<EncodedGroup, ShardError>> = BTreeMap::new();
         for (g, group) in groups.iter().copied().enumerate() {
@@ -284,7 +285,9 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
                 if let Some(e) = early.remove(&g) {
                     break e;
                 }
-                let (i, e) = done_rx.recv().expect("every row group is encoded or failed");
+                let (i, e) = done_rx
+                    .recv()
+                    .expect("every row group is encoded or failed");
                 early.insert(i, e);
             }?;
             for &(ci, f) in group {
@@ -315,7 +318,8 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
         Ok(())
     };
     let result = std::thread::scope(|scope| {
-        let (clips, groups, image, factory, pool) = (&clips, &groups, job.opts.image, &factory, &pool);
+        let (clips, groups, image, factory, pool) =
+            (&clips, &groups, job.opts.image, &factory, &pool);
         scope.spawn(move || {
             pool.in_place_scope(|s| {
                 for (g, &group) in groups.iter().enumerate() {
@@ -544,7 +548,9 @@ struct EncodedGroup {
 }
 
 /// A factory of column writers with the shards' schema and properties.
-fn column_writer_factory(props: &WriterProperties) -> Result<ArrowRowGroupWriterFactory, ShardError> {
+fn column_writer_factory(
+    props: &WriterProperties,
+) -> Result<ArrowRowGroupWriterFactory, ShardError> {
     ArrowWriter::try_new(io::sink(), schema(), Some(props.clone()))
         .and_then(ArrowWriter::into_serialized_writer)
         .map(|(_, factory)| factory)

@@ -415,6 +415,76 @@ fn label_stage_calibrates_and_resumes() {
     );
 }
 
+#[test]
+fn calib_motion_range_flags_the_clips_that_move_more() {
+    // Definition (no outside source: ours): a clip's motion size is its mean
+    // |action_est| per dimension; the range is the largest among calib clips;
+    // a clip beyond it in any dimension is counted and, on holdout, excluded
+    // from the in-range coverage. Recomputed here from the per-clip files.
+    let dir = tempfile::tempdir().unwrap();
+    let run = dir.path();
+    let summary = fake_run(run, 24, 5);
+    let cal = &summary.calibration;
+    let label_dir = run.join("label");
+    let size = |set: &str, id: &str| {
+        let l = ClipLabels::read(&label_dir, set, id).unwrap();
+        (0..DIMS.len())
+            .map(|d| {
+                l.action_est
+                    .iter()
+                    .map(|r| (r[d] as f64).abs())
+                    .sum::<f64>()
+                    / l.action_est.len() as f64
+            })
+            .collect::<Vec<f64>>()
+    };
+    let splits = fake_decode_splits(24);
+    let mut range = vec![0.0f64; DIMS.len()];
+    for ((set, id), split) in &splits {
+        if *split == Split::Calib {
+            for (r, s) in range.iter_mut().zip(size(set, id)) {
+                *r = r.max(s);
+            }
+        }
+    }
+    assert_eq!(cal.calib_motion_range.len(), DIMS.len());
+    // The stage measures the estimates as the files store them (f32), in
+    // the same order: exactly equal.
+    assert_eq!(cal.calib_motion_range, range);
+    let beyond = |s: &[f64]| s.iter().zip(&range).any(|(s, r)| s > r);
+    let holdout_beyond: Vec<String> = splits
+        .iter()
+        .filter(|(_, sp)| **sp == Split::Holdout)
+        .filter(|((set, id), _)| beyond(&size(set, id)))
+        .map(|((_, id), _)| id.clone())
+        .collect();
+    assert_eq!(cal.holdout_beyond_range, holdout_beyond);
+    let robot_beyond = splits
+        .keys()
+        .filter(|(set, id)| beyond(&size(set, id)))
+        .count() as u64;
+    assert_eq!(summary.sets["robot"].beyond_calib_range, robot_beyond);
+    // Calib clips never lie beyond their own range.
+    assert!(
+        splits
+            .iter()
+            .filter(|(_, sp)| **sp == Split::Calib)
+            .all(|((set, id), _)| !beyond(&size(set, id)))
+    );
+    for d in &cal.dims {
+        let in_range = d.holdout_coverage_in_range;
+        if holdout_beyond.is_empty() {
+            assert_eq!(in_range, d.holdout_coverage, "{}", d.dim);
+        } else {
+            assert!(
+                in_range.is_some_and(|c| (0.0..=1.0).contains(&c)),
+                "{}",
+                d.dim
+            );
+        }
+    }
+}
+
 /// The splits `fake_decode` assigns, without writing anything.
 fn fake_decode_splits(robot: usize) -> BTreeMap<(String, String), Split> {
     (0..robot)

@@ -314,6 +314,7 @@ fn fake_run(run: &Path, stages: usize) {
                 holdout_coverage: Some(0.88 + d as f64 * 0.02),
                 calib_coverage: 0.909,
                 holdout_mean_std: Some(0.1),
+                holdout_coverage_in_range: Some(0.89 + d as f64 * 0.02),
             })
             .collect(),
         calib_transitions: 11,
@@ -329,6 +330,8 @@ fn fake_run(run: &Path, stages: usize) {
         holdout_reliability_raw: Reliability::default(),
         ood_threshold: 0.3,
         holdout_ood_rate: Some(0.0),
+        calib_motion_range: vec![0.5, 0.5, 1.0],
+        holdout_beyond_range: vec![],
     };
     write_json_atomic(&label_dir.join("calibration.json"), &calibration).unwrap();
     let codes = CodesTable {
