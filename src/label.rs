@@ -15,7 +15,6 @@
 
 pub mod conformal;
 pub mod fitted;
-pub mod inspect;
 pub mod kmeans;
 pub mod model;
 pub mod motion_range;
@@ -223,4 +222,72 @@ pub fn manifest_of(summary: &LabelSummary) -> crate::store::StageManifest {
     m.timings.insert("label_pass_s".into(), summary.seconds.1);
     m.summary = serde_json::to_value(summary).unwrap_or_default();
     m
+}
+
+/// One line per clip set with clips beyond the calib clips' motion range
+/// ([`motion_range`]), read from the label stage's manifest under `run_dir`;
+/// none when the stage has not run or every clip lies inside the range.
+pub fn motion_range_notes(run_dir: &std::path::Path) -> Vec<String> {
+    let sets: std::collections::BTreeMap<String, stage::SetSummary> =
+        crate::store::StageManifest::read(run_dir, "label")
+            .ok()
+            .flatten()
+            .and_then(|m| m.summary.get("sets").cloned())
+            .and_then(|v| serde_json::from_value(v).ok())
+            .unwrap_or_default();
+    sets.iter()
+        .filter(|(_, s)| s.beyond_calib_range > 0)
+        .map(|(name, s)| {
+            format!(
+                "label: {} of {} `{name}` clips move more than every calibration clip in some action dimension; their intervals may cover less than nominal (actuary inspect {} label)",
+                s.beyond_calib_range,
+                s.clips,
+                run_dir.display()
+            )
+        })
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn motion_range_notes_name_the_sets_with_clips_beyond() {
+        let dir = tempfile::tempdir().unwrap();
+        assert!(
+            motion_range_notes(dir.path()).is_empty(),
+            "no label stage yet"
+        );
+        let sets = std::collections::BTreeMap::from([
+            (
+                "human".to_string(),
+                stage::SetSummary {
+                    clips: 12,
+                    beyond_calib_range: 5,
+                    ..Default::default()
+                },
+            ),
+            (
+                "robot".to_string(),
+                stage::SetSummary {
+                    clips: 4,
+                    ..Default::default()
+                },
+            ),
+        ]);
+        let mut m = crate::store::StageManifest {
+            stage: "label".into(),
+            ..Default::default()
+        };
+        m.summary = serde_json::json!({ "sets": sets });
+        m.write(dir.path()).unwrap();
+        let notes = motion_range_notes(dir.path());
+        assert_eq!(notes.len(), 1, "{notes:?}");
+        assert!(
+            notes[0].starts_with("label: 5 of 12 `human` clips"),
+            "{}",
+            notes[0]
+        );
+    }
 }

@@ -128,6 +128,11 @@ fn dispatch(command: Command) -> Result<i32> {
                 threads: default_jobs(jobs),
             };
             runner::run(&spec, &opts)?;
+            if until >= Stage::Label {
+                for note in actuary::label::motion_range_notes(&spec.out) {
+                    eprintln!("{note}");
+                }
+            }
             let last = runner::stage_dir(&spec.out, until);
             if until == Stage::Shard {
                 println!("shards: {}", last.display());
