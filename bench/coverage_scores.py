@@ -14,7 +14,7 @@ the label stage stored it), and re-runs split conformal calibration on the
   - regularised |a - est| / (std + b * median calib std), b in 0.1 .. 2
     (the normalised nonconformity measure with a sensitivity parameter;
     Papadopoulos, Vovk & Gammerman 2011, "Regression conformal prediction
-    with nearest neighbours", JAIR 40);
+    with nearest neighbours", JAIR 40; cited from memory);
   - |a - est| / sqrt(std);
   - |a - est| / (std + b * |est|), errors that grow with the action's size
     (a choice of b read off these holdout figures would be tuned on the
