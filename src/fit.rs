@@ -28,6 +28,7 @@ pub use data::shift_frame;
 mod error;
 mod fitted;
 mod metrics;
+mod splits;
 mod stage;
 mod train;
 
@@ -35,6 +36,7 @@ use serde::{Deserialize, Serialize};
 
 pub use checkpoint::CHECKPOINT_FORMAT;
 pub use data::{Split, SplitCounts, Standardisation, split_counts};
+pub use splits::SplitBy;
 pub use error::FitError;
 pub use fitted::{
     ClipSplit, FittedModel, HeadOutput, InferOutput, LABELLED_ONLY, MODEL_FILE, ModelInfo, SEMI,
@@ -94,6 +96,9 @@ pub struct FitOptions {
     pub calib_fraction: f64,
     /// Fraction of labelled clips for holdout evaluation.
     pub holdout_fraction: f64,
+    /// How labelled clips are dealt into train, calib and holdout.
+    #[serde(default)]
+    pub split_by: SplitBy,
     /// Also train the labelled-only comparison model.
     pub compare: bool,
     /// How the action heads are trained.
@@ -127,6 +132,7 @@ impl Default for FitOptions {
             checkpoint_every: DEFAULT_CHECKPOINT_EVERY,
             calib_fraction: DEFAULT_CALIB_FRACTION,
             holdout_fraction: DEFAULT_HOLDOUT_FRACTION,
+            split_by: SplitBy::Motion,
             compare: true,
             head_loss: HeadLoss::Faithful,
             posterior_positions: false,

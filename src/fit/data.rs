@@ -255,6 +255,7 @@ impl Dataset {
         seed: u64,
         calib: f64,
         holdout: f64,
+        split_by: super::SplitBy,
     ) -> Result<Self, FitError> {
         let run = AlignedRun::open_or_passthrough(run_dir, actions_opts)?;
         let views = run.clips();
@@ -297,18 +298,17 @@ impl Dataset {
                 transitions: v.len().saturating_sub(1),
             });
         }
-        // Splits: labelled clips in (set, id) order, shuffled by the seed.
-        let mut labelled: Vec<usize> = (0..clips.len()).filter(|&i| clips[i].labelled).collect();
+        // Splits: labelled clips in (set, id) order, dealt by `split_by`.
+        let labelled: Vec<usize> = (0..clips.len()).filter(|&i| clips[i].labelled).collect();
         let counts = split_counts(labelled.len(), calib, holdout)?;
-        Rng::for_name(seed, "fit.splits").shuffle(&mut labelled);
-        for (rank, &i) in labelled.iter().enumerate() {
-            clips[i].split = if rank < counts.calib {
-                Split::Calib
-            } else if rank < counts.calib + counts.holdout {
-                Split::Holdout
-            } else {
-                Split::Train
-            };
+        let rows: Vec<&[Vec<f32>]> = labelled
+            .iter()
+            .map(|&i| views[clips[i].index].actions().unwrap_or(&[]))
+            .collect();
+        let scores = super::splits::motion_scores(&rows, dims.len());
+        let dealt = super::splits::assign(&scores, counts, split_by, seed);
+        for (&i, split) in labelled.iter().zip(dealt) {
+            clips[i].split = split;
         }
         let train_l: Vec<usize> = (0..clips.len())
             .filter(|&i| clips[i].labelled && clips[i].split == Split::Train)

@@ -160,6 +160,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
         spec.seed,
         opts.calib_fraction,
         opts.holdout_fraction,
+        opts.split_by,
     )?;
     let std = ds.standardisation.clone();
     let cfg = opts.network(ds.width, ds.height, ds.action_dims());

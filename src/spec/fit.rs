@@ -20,6 +20,7 @@
 //! checkpoint-every = 100      # steps between checkpoints
 //! calib-fraction = 0.2        # labelled clips for calibration
 //! holdout-fraction = 0.2      # labelled clips for holdout evaluation
+//! split-by = "motion"         # or "random": how labelled clips are dealt into the splits
 //! compare = true              # also train on labelled clips alone, for comparison
 //! ```
 
@@ -31,7 +32,7 @@ use serde::de::{self, Deserializer, Visitor};
 use toml::Spanned;
 
 use super::error::Problems;
-use crate::fit::FitOptions;
+use crate::fit::{FitOptions, SplitBy};
 use crate::model::{HeadLoss, SharedVariance};
 
 /// A number written as an integer or a float.
@@ -108,6 +109,8 @@ pub struct RawFit {
     pub calib_fraction: Option<Spanned<Number>>,
     /// Holdout fraction.
     pub holdout_fraction: Option<Spanned<Number>>,
+    /// How labelled clips are dealt into the splits.
+    pub split_by: Option<SplitBy>,
     /// Train the labelled-only comparison.
     pub compare: Option<bool>,
 }
@@ -178,6 +181,7 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
         checkpoint_every,
         calib_fraction,
         holdout_fraction,
+        split_by,
         compare,
     } = raw;
     let mut o = FitOptions::default();
@@ -260,6 +264,9 @@ pub fn resolve(raw: &RawFit, problems: &mut Problems<'_>) -> FitOptions {
     if let Some(v) = posterior_positions {
         o.posterior_positions = *v;
     }
+    if let Some(v) = split_by {
+        o.split_by = *v;
+    }
     if let Some(v) = int(
         "checkpoint-every",
         checkpoint_every,
@@ -326,7 +333,7 @@ mod tests {
         let (o, n) = parse(
             "latent = 4\nwidths = [8, 16]\nsteps = 10\nbatch = 8\nlearning-rate = 1\n\
              labelled-share = 0.25\nalign-weight = 0\nshared-variance = \"learned\"\ncompare = false\n\
-             head-loss = \"nll\"\nposterior-positions = true\n",
+             head-loss = \"nll\"\nposterior-positions = true\nsplit-by = \"random\"\n",
         );
         assert_eq!(n, 0);
         assert_eq!(
@@ -341,6 +348,8 @@ mod tests {
         assert!(!o.compare);
         assert_eq!(o.head_loss, HeadLoss::Nll);
         assert!(o.posterior_positions);
+        assert_eq!(o.split_by, SplitBy::Random);
+        assert!(toml::from_str::<RawFit>("split-by = \"speed\"").is_err());
         assert!(toml::from_str::<RawFit>("head-loss = \"mse\"").is_err());
         assert_eq!(parse("latent = 0\nlabelled-share = 1.0\nbatch = 2\n").1, 3);
         assert_eq!(parse("calib-fraction = 0.5\nholdout-fraction = 0.5\n").1, 1);
