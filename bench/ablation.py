@@ -130,6 +130,9 @@ def main():
     ap.add_argument("--only", nargs="*", help="variant names to run (default: all)")
     ap.add_argument("--regen", action="store_true", help="regenerate the demo clips instead of using demo-clips/")
     args = ap.parse_args()
+    # The spec's `out` is resolved against the spec file's folder, which is
+    # inside OUT: a relative OUT would nest there.
+    args.out = os.path.abspath(args.out)
     if not os.path.exists(args.bin):
         subprocess.run(["cargo", "build", "--release", "--bin", "actuary"], cwd=ROOT, check=True)
     os.makedirs(args.out, exist_ok=True)
