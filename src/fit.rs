@@ -36,12 +36,12 @@ use serde::{Deserialize, Serialize};
 
 pub use checkpoint::CHECKPOINT_FORMAT;
 pub use data::{Split, SplitCounts, Standardisation, split_counts};
-pub use splits::SplitBy;
 pub use error::FitError;
 pub use fitted::{
     ClipSplit, FittedModel, HeadOutput, InferOutput, LABELLED_ONLY, MODEL_FILE, ModelInfo, SEMI,
 };
 pub use metrics::{DimMetrics, Metrics, ModelMetrics};
+pub use splits::SplitBy;
 pub use stage::{
     ComparisonRow, FitInputs, FitSummary, METRICS_FILE, ModelRun, fit_run, inspect_text, run_stage,
 };

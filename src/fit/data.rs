@@ -305,7 +305,7 @@ impl Dataset {
             .iter()
             .map(|&i| views[clips[i].index].actions().unwrap_or(&[]))
             .collect();
-        let scores = super::splits::motion_scores(&rows, dims.len());
+        let scores = super::splits::motion_scores(&rows, &dims);
         let dealt = super::splits::assign(&scores, counts, split_by, seed);
         for (&i, split) in labelled.iter().zip(dealt) {
             clips[i].split = split;

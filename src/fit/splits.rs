@@ -12,7 +12,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use super::data::{Split, SplitCounts};
+use super::data::{Split, SplitCounts, Standardisation};
 use crate::model::Rng;
 
 /// How labelled clips are dealt into train, calib and holdout.
@@ -29,29 +29,17 @@ pub enum SplitBy {
 /// One number per clip for ordering by motion: the mean over dimensions of the
 /// clip's mean absolute recorded action, each dimension divided by its
 /// standard deviation over all labelled transitions (so no dimension's units
-/// dominate). `clips[i]` holds clip i's action rows.
-pub fn motion_scores(clips: &[&[Vec<f32>]], dims: usize) -> Vec<f64> {
-    let (mut sum, mut sq, mut n) = (vec![0.0f64; dims], vec![0.0f64; dims], 0usize);
-    for row in clips.iter().flat_map(|c| c.iter()) {
-        for d in 0..dims {
-            let v = row[d] as f64;
-            sum[d] += v;
-            sq[d] += v * v;
-        }
-        n += 1;
-    }
-    let std: Vec<f64> = (0..dims)
-        .map(|d| {
-            let m = sum[d] / n.max(1) as f64;
-            let s = (sq[d] / n.max(1) as f64 - m * m).max(0.0).sqrt();
-            if s > 0.0 { s } else { 1.0 }
-        })
-        .collect();
+/// dominate; a constant dimension keeps 1, as in [`Standardisation`]).
+/// `clips[i]` holds clip i's action rows.
+pub fn motion_scores(clips: &[&[Vec<f32>]], dims: &[String]) -> Vec<f64> {
+    let all_rows = clips.iter().flat_map(|c| c.iter().cloned());
+    let spread = Standardisation::fit(dims, all_rows).std;
     clips
         .iter()
         .map(|rows| {
-            let size = crate::label::motion_range::motion_size(rows.iter().map(Vec::as_slice), dims);
-            size.iter().zip(&std).map(|(s, d)| s / d).sum::<f64>() / dims.max(1) as f64
+            let size =
+                crate::label::motion_range::motion_size(rows.iter().map(Vec::as_slice), dims.len());
+            size.iter().zip(&spread).map(|(s, d)| s / d).sum::<f64>() / dims.len().max(1) as f64
         })
         .collect()
 }
@@ -81,7 +69,10 @@ pub fn assign(scores: &[f64], counts: SplitCounts, by: SplitBy, seed: u64) -> Ve
             let mut order: Vec<usize> = (0..n).collect();
             order.sort_by(|&a, &b| scores[a].total_cmp(&scores[b]).then(a.cmp(&b)));
             let mut taken = vec![false; n];
-            for (split, k) in [(Split::Calib, counts.calib), (Split::Holdout, counts.holdout)] {
+            for (split, k) in [
+                (Split::Calib, counts.calib),
+                (Split::Holdout, counts.holdout),
+            ] {
                 let start = rng.uniform();
                 for j in 0..k {
                     let ideal = ((j as f64 + start) * n as f64 / k as f64) as usize;
@@ -173,10 +164,11 @@ mod tests {
     fn scores_are_scale_free_per_dimension() {
         let a: Vec<Vec<f32>> = vec![vec![1.0, 100.0], vec![-1.0, -100.0]];
         let b: Vec<Vec<f32>> = vec![vec![2.0, 200.0], vec![-2.0, -200.0]];
-        let s = motion_scores(&[&a, &b], 2);
+        let dims = ["x".to_string(), "y".to_string()];
+        let s = motion_scores(&[&a, &b], &dims);
         let scaled_a: Vec<Vec<f32>> = a.iter().map(|r| vec![r[0], r[1] / 100.0]).collect();
         let scaled_b: Vec<Vec<f32>> = b.iter().map(|r| vec![r[0], r[1] / 100.0]).collect();
-        let t = motion_scores(&[&scaled_a, &scaled_b], 2);
+        let t = motion_scores(&[&scaled_a, &scaled_b], &dims);
         assert!((s[0] - t[0]).abs() < 1e-9 && (s[1] - t[1]).abs() < 1e-9);
         assert!(s[1] > s[0]);
     }
