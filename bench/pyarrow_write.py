@@ -70,8 +70,6 @@ for sync in (False, True):
 
 
 def png_encoded(frames, size):
-    from PIL import Image
-
     def one(raw):
         buf = io.BytesIO()
         Image.frombuffer("RGB", size, raw, "raw", "RGB", 0, 1).save(buf, "PNG", compress_level=1)
@@ -83,15 +81,15 @@ def png_encoded(frames, size):
 
 images = table.column("image").to_pylist()
 if images and images[0][:8] == b"\x89PNG\r\n\x1a\n":
-    from PIL import Image
-    first = Image.open(io.BytesIO(images[0]))
-    size = first.size
+    from PIL import Image  # also used by png_encoded
+
+    frame_size = Image.open(io.BytesIO(images[0])).size
     frames = [Image.open(io.BytesIO(b)).convert("RGB").tobytes() for b in images]
     at = table.column_names.index("image")
 
     def encode_then_write():
         t0 = time.perf_counter()
-        encoded = pa.array(png_encoded(frames, size), type=table.schema.field("image").type)
+        encoded = pa.array(png_encoded(frames, frame_size), type=table.schema.field("image").type)
         with_png = table.set_column(at, table.schema.field("image"), encoded)
         return time.perf_counter() - t0 + write_once(False, with_png)
 
