@@ -58,6 +58,34 @@ pub struct Metrics {
     pub missing_truth: Vec<String>,
     /// Metrics by model (`semi`, `labelled-only`, `mean-baseline`).
     pub models: BTreeMap<String, ModelMetrics>,
+    /// Per clip, the sums R^2 is made of, so that R^2 over any subset of the
+    /// clips can be computed afterwards (e.g. to choose a setting on some
+    /// evaluation clips and report on the others).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub per_clip: Vec<ClipSums>,
+}
+
+/// One clip's sums for one dimension: `n` is the clip's transitions.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
+pub struct DimSums {
+    /// Sum of squared errors.
+    pub sse: f64,
+    /// Sum of the truth.
+    pub sum_y: f64,
+    /// Sum of the squared truth.
+    pub sum_y2: f64,
+}
+
+/// One clip's sums per model and dimension. Over a subset of clips,
+/// `R^2 = 1 - sum(sse) / (sum(sum_y2) - sum(sum_y)^2 / sum(n))` per dimension.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ClipSums {
+    /// Clip id.
+    pub clip: String,
+    /// Transitions scored.
+    pub n: usize,
+    /// Model -> dimension -> sums.
+    pub models: BTreeMap<String, BTreeMap<String, DimSums>>,
 }
 
 /// Running sums for one model and dimension.
@@ -99,6 +127,7 @@ pub struct Evaluator<'a> {
     models: Vec<(String, Vec<Acc>)>,
     clips: usize,
     transitions: usize,
+    per_clip: Vec<ClipSums>,
 }
 
 impl<'a> Evaluator<'a> {
@@ -114,29 +143,62 @@ impl<'a> Evaluator<'a> {
             models: m,
             clips: 0,
             transitions: 0,
+            per_clip: Vec::new(),
         }
     }
 
-    /// Adds one clip: truth rows and, per model in order, (means, stds), all
+    /// Adds clip `id`: truth rows and, per model in order, (means, stds), all
     /// on the same transitions.
     pub fn add_clip(
         &mut self,
+        id: &str,
         truth: &[Vec<f32>],
         preds: &[(Vec<Vec<f32>>, Vec<Vec<f32>>)],
         base: &Standardisation,
     ) {
         self.clips += 1;
         self.transitions += truth.len();
+        let mut clip: Vec<Vec<Acc>> =
+            vec![vec![Acc::default(); self.dims.len()]; self.models.len()];
         for (k, row) in truth.iter().enumerate() {
             for d in 0..self.dims.len() {
                 let y = f64::from(row[d]);
                 for (mi, (m, s)) in preds.iter().enumerate() {
-                    self.models[mi].1[d].add(y, f64::from(m[k][d]), f64::from(s[k][d]));
+                    let (mean, std) = (f64::from(m[k][d]), f64::from(s[k][d]));
+                    self.models[mi].1[d].add(y, mean, std);
+                    clip[mi][d].add(y, mean, std);
                 }
                 let last = self.models.len() - 1;
                 self.models[last].1[d].add(y, base.mean[d], base.std[d]);
+                clip[last][d].add(y, base.mean[d], base.std[d]);
             }
         }
+        let models = self
+            .models
+            .iter()
+            .zip(&clip)
+            .map(|((name, _), accs)| {
+                let dims = self
+                    .dims
+                    .iter()
+                    .zip(accs)
+                    .map(|(d, a)| {
+                        let sums = DimSums {
+                            sse: a.sse,
+                            sum_y: a.sum_y,
+                            sum_y2: a.sum_y2,
+                        };
+                        (d.clone(), sums)
+                    })
+                    .collect();
+                (name.clone(), dims)
+            })
+            .collect();
+        self.per_clip.push(ClipSums {
+            clip: id.to_string(),
+            n: truth.len(),
+            models,
+        });
     }
 
     /// The metrics table.
@@ -163,6 +225,7 @@ impl<'a> Evaluator<'a> {
             truth: None,
             missing_truth: Vec::new(),
             models,
+            per_clip: self.per_clip,
         }
     }
 }
@@ -247,7 +310,7 @@ mod tests {
             std: vec![1.0],
             constant: vec![false],
         };
-        e.add_clip(&truth, &[pred], &base);
+        e.add_clip("c0", &truth, &[pred], &base);
         let m = e.finish("holdout");
         let d = &m.models["m"].dims["a"];
         assert!((d.r2.unwrap() - 0.5).abs() < 1e-12);
@@ -255,5 +318,58 @@ mod tests {
         assert!((d.nll - (0.5 * LN_2PI + 0.5 / 3.0)).abs() < 1e-12);
         // The baseline predicts the mean: R^2 = 0 on this set.
         assert!(m.models["mean-baseline"].dims["a"].r2.unwrap().abs() < 1e-12);
+    }
+
+    /// R^2 over a subset of clips from their sums, as the per-clip doc says.
+    fn r2_from_sums(per_clip: &[&ClipSums], model: &str, dim: &str) -> f64 {
+        let (mut n, mut sse, mut sy, mut sy2) = (0.0, 0.0, 0.0, 0.0);
+        for c in per_clip {
+            let s = c.models[model][dim];
+            n += c.n as f64;
+            sse += s.sse;
+            sy += s.sum_y;
+            sy2 += s.sum_y2;
+        }
+        1.0 - sse / (sy2 - sy * sy / n)
+    }
+
+    #[test]
+    fn per_clip_sums_rebuild_the_pooled_and_the_single_clip_r2() {
+        // Two clips; pooled R^2 from the per-clip sums equals the table's,
+        // and one clip's sums equal that clip scored alone.
+        let dims = vec!["a".to_string()];
+        let base = Standardisation {
+            dims: dims.clone(),
+            mean: vec![0.5],
+            std: vec![1.0],
+            constant: vec![false],
+        };
+        let clips: [(&str, Vec<f32>, Vec<f32>); 2] = [
+            ("c0", vec![1.0, 2.0, 3.0, 0.0], vec![1.5, 1.0, 2.5, 0.5]),
+            ("c1", vec![-1.0, 4.0, 2.0], vec![0.0, 3.0, 2.5]),
+        ];
+        let mut all = Evaluator::new(&dims, &["m"]);
+        for (id, t, p) in &clips {
+            let truth: Vec<Vec<f32>> = t.iter().map(|&v| vec![v]).collect();
+            let pred: Vec<Vec<f32>> = p.iter().map(|&v| vec![v]).collect();
+            all.add_clip(id, &truth, &[(pred, vec![vec![1.0]; p.len()])], &base);
+        }
+        let m = all.finish("holdout");
+        assert_eq!(m.per_clip.len(), 2);
+        let both: Vec<&ClipSums> = m.per_clip.iter().collect();
+        for model in ["m", "mean-baseline"] {
+            let pooled = m.models[model].dims["a"].r2.unwrap();
+            assert!(
+                (r2_from_sums(&both, model, "a") - pooled).abs() < 1e-9,
+                "{model}"
+            );
+        }
+        let (id, t, p) = &clips[1];
+        let mut one = Evaluator::new(&dims, &["m"]);
+        let truth: Vec<Vec<f32>> = t.iter().map(|&v| vec![v]).collect();
+        let pred: Vec<Vec<f32>> = p.iter().map(|&v| vec![v]).collect();
+        one.add_clip(id, &truth, &[(pred, vec![vec![1.0]; p.len()])], &base);
+        let alone = one.finish("holdout").models["m"].dims["a"].r2.unwrap();
+        assert!((r2_from_sums(&[&m.per_clip[1]], "m", "a") - alone).abs() < 1e-9);
     }
 }

@@ -243,7 +243,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
         };
         let preds = metrics::decode_grid_predictions(&refs, clip, &rules)?;
         clip.release();
-        holdout.add_clip(truth, &preds, &std);
+        holdout.add_clip(&c.id, truth, &preds, &std);
     }
     tables.push(holdout.finish("holdout"));
     let mut truth_used = Vec::new();
@@ -271,7 +271,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
             }
             let preds = metrics::decode_grid_predictions(&refs, clip, &rules)?;
             clip.release();
-            ev.add_clip(&rows[..n], &preds, &std);
+            ev.add_clip(&c.id, &rows[..n], &preds, &std);
         }
         let mut table = ev.finish(&format!("unlabelled:{}", set.name));
         table.truth = Some(truth_dir.clone());
