@@ -1,5 +1,6 @@
 //! The fit stage end to end on a tiny synthetic demo: resumption after
-//! SIGKILL, NaN stops, refused checkpoints, a constant action dimension.
+//! SIGKILL, NaN stops, refused checkpoints, a constant action dimension,
+//! per-clip R² sums against scikit-learn.
 
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
@@ -212,4 +213,83 @@ fn constant_action_dimension_is_reported_and_handled() {
     assert!(grip["mae"].as_f64().unwrap().is_finite(), "{grip}");
     let (_, out, _) = actuary(&["inspect", s(&dir.path().join("run")), "fit"]);
     assert!(!out.is_empty());
+}
+
+/// Per-clip sums in `metrics.json` against scikit-learn's `r2_score` on the
+/// shards' `action_est` and the truth files, over a subset of the human clips
+/// (reference: scikit-learn, `sklearn.metrics.r2_score`,
+/// `multioutput="raw_values"`).
+#[test]
+fn per_clip_sums_give_scikit_learn_r2_on_a_subset_of_clips() {
+    if !crate::util::require_python(&["numpy", "pyarrow", "sklearn"]) {
+        return;
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let clips = dir.path().join("clips");
+    let (code, _, err) = actuary(&[
+        "demo-clips",
+        s(&clips),
+        "--robot-clips",
+        "5",
+        "--human-clips",
+        "3",
+    ]);
+    assert_eq!(code, 0, "{err}");
+    let fit = TINY_FIT.replace("steps = 120", "steps = 20") + "compare = false\n";
+    let path = spec(dir.path(), "sub.toml", &clips, "run", &fit);
+    let (code, _, err) = actuary(&["run", s(&path), "-j", "1"]);
+    assert_eq!(code, 0, "{err}");
+    let run = dir.path().join("run");
+    let m = metrics(&run);
+    let human = m["metrics"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|t| t["name"] == "unlabelled:human")
+        .expect("human truth table");
+    let per_clip = human["per_clip"].as_array().unwrap();
+    assert_eq!(per_clip.len(), 3, "{human}");
+    // Our figure: R^2 over the first two clips from their sums.
+    let subset: Vec<&str> = per_clip[..2]
+        .iter()
+        .map(|c| c["clip"].as_str().unwrap())
+        .collect();
+    let ours: Vec<f64> = ["dx", "dy", "grip"]
+        .iter()
+        .map(|d| {
+            let (mut n, mut sse, mut sy, mut sy2) = (0.0, 0.0, 0.0, 0.0);
+            for c in &per_clip[..2] {
+                let v = &c["models"]["semi"][*d];
+                n += c["n"].as_f64().unwrap();
+                sse += v["sse"].as_f64().unwrap();
+                sy += v["sum_y"].as_f64().unwrap();
+                sy2 += v["sum_y2"].as_f64().unwrap();
+            }
+            1.0 - sse / (sy2 - sy * sy / n)
+        })
+        .collect();
+    let code = "import sys, glob, os, numpy as np, pyarrow.parquet as pq\n\
+                from sklearn.metrics import r2_score\n\
+                run, truth, clips = sys.argv[1], sys.argv[2], sys.argv[3].split(',')\n\
+                t = pq.ParquetDataset(sorted(glob.glob(os.path.join(run, 'shard', '*.parquet')))).read(columns=['clip', 'set', 'frame', 'action_est'])\n\
+                pred, true = [], []\n\
+                for clip, st, frame, est in zip(*(t.column(c).to_pylist() for c in ['clip', 'set', 'frame', 'action_est'])):\n\
+                \x20   if st != 'human' or clip not in clips or est is None:\n\
+                \x20       continue\n\
+                \x20   rows = np.loadtxt(os.path.join(truth, clip + '.actions.csv'), delimiter=',', skiprows=1, ndmin=2)\n\
+                \x20   pred.append(est); true.append(rows[frame, 1:])\n\
+                print(' '.join(repr(float(v)) for v in r2_score(np.array(true), np.array(pred), multioutput='raw_values')))";
+    let out = crate::util::python(
+        code,
+        &[s(&run), s(&clips.join("human-truth")), &subset.join(",")],
+    );
+    let theirs: Vec<f64> = out.split_whitespace().map(|v| v.parse().unwrap()).collect();
+    assert_eq!(theirs.len(), 3, "{out}");
+    for (d, (a, b)) in ours.iter().zip(&theirs).enumerate() {
+        // action_est is stored as float32 in the shards: agree to 1e-4.
+        assert!(
+            (a - b).abs() < 1e-4,
+            "dimension {d}: ours {a}, scikit-learn {b}"
+        );
+    }
 }
