@@ -28,7 +28,7 @@ Steps:
   5. The same choice over DRAWS further random halvings: how often each weight is
      chosen and the distribution of the chosen weight's gain on its report half.
 
-Usage: bench/align_weight_select.py [--base-run runs/tabletop] [--weights 0,300,1000,3000]
+Usage: bench/align_weight_select.py [--base-run runs/tabletop] [--weights 0,100,300,1000,3000,5000,10000]
                                     [--out bench/out/weight-select] [--seed 0] [--draws 2000]
 Needs: python3 with numpy; a built actuary binary (target/release/actuary).
 Writes OUT/weight_select.json and prints Markdown tables for the README.
@@ -101,7 +101,7 @@ def main():
     ap.add_argument("--spec", default=os.path.join(ROOT, "pipeline-specs", "tabletop.toml"))
     ap.add_argument("--base-run", default=os.path.join(ROOT, "runs", "tabletop"))
     ap.add_argument("--out", default=os.path.join(ROOT, "bench", "out", "weight-select"))
-    ap.add_argument("--weights", default="0,300,1000,3000")
+    ap.add_argument("--weights", default="0,100,300,1000,3000,5000,10000")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--draws", type=int, default=2000)
     ap.add_argument("-j", "--threads", default="2")
