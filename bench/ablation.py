@@ -55,6 +55,8 @@ def spec_text(base_text, base_dir, demo_dir, out_dir, extra):
     for table, keys in extra.items():
         if not keys:
             continue
+        for k in keys:  # the base spec may set the key already (the demo sets align-weight)
+            text = re.sub(rf'(?m)^{re.escape(k)}\s*=.*\n?', "", text)
         lines = "\n".join(f"{k} = {v}" for k, v in keys.items())
         header = f"[{table}]"
         if re.search(rf'(?m)^\[{table}\]\s*$', text):

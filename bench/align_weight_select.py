@@ -53,6 +53,8 @@ def spec_with(base_text, demo_dir, out_dir, fit_keys):
     """The demo spec with absolute clip paths, its own run folder and extra [fit] keys."""
     text = re.sub(r'(?m)^out\s*=.*$', f'out = "{out_dir}"', base_text)
     text = text.replace('"../demo-clips', f'"{demo_dir}')
+    for k in fit_keys:  # the spec may set these already (the demo sets align-weight)
+        text = re.sub(rf'(?m)^{re.escape(k)}\s*=.*\n?', "", text)
     lines = "\n".join(f"{k} = {v}" for k, v in fit_keys.items())
     if re.search(r'(?m)^\[fit\]\s*$', text):
         return re.sub(r'(?m)^\[fit\]\s*$', "[fit]\n" + lines, text, count=1)
