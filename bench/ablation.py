@@ -47,7 +47,7 @@ VARIANTS = [
 ]
 
 
-def spec_text(base_text, base_dir, demo_dir, out_dir, extra):
+def spec_text(base_text, demo_dir, out_dir, extra):
     """The demo spec with absolute paths, its own run folder and extra keys per table."""
     text = base_text
     text = re.sub(r'(?m)^out\s*=.*$', f'out = "{out_dir}"', text)
@@ -158,7 +158,7 @@ def main():
         run = os.path.join(args.out, "runs", slug)
         spec_path = os.path.join(args.out, f"{slug}.toml")
         with open(spec_path, "w") as f:
-            f.write(spec_text(base_text, os.path.dirname(args.spec), demo, run, extra))
+            f.write(spec_text(base_text, demo, run, extra))
         if first_run and not os.path.isdir(os.path.join(run, "decode")):
             # Same decode settings: reuse the first run's decode output (its stage key matches).
             os.makedirs(run, exist_ok=True)

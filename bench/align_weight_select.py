@@ -44,21 +44,11 @@ import sys
 
 import numpy as np
 
+from ablation import spec_text  # same folder: the demo spec with paths, run folder and extra keys
+
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 HOLDOUT_BAR = 0.8
 EVAL = "unlabelled:human"
-
-
-def spec_with(base_text, demo_dir, out_dir, fit_keys):
-    """The demo spec with absolute clip paths, its own run folder and extra [fit] keys."""
-    text = re.sub(r'(?m)^out\s*=.*$', f'out = "{out_dir}"', base_text)
-    text = text.replace('"../demo-clips', f'"{demo_dir}')
-    for k in fit_keys:  # the spec may set these already (the demo sets align-weight)
-        text = re.sub(rf'(?m)^{re.escape(k)}\s*=.*\n?', "", text)
-    lines = "\n".join(f"{k} = {v}" for k, v in fit_keys.items())
-    if re.search(r'(?m)^\[fit\]\s*$', text):
-        return re.sub(r'(?m)^\[fit\]\s*$', "[fit]\n" + lines, text, count=1)
-    return text + f"\n[fit]\n{lines}\n"
 
 
 def spec_weight(text):
@@ -132,16 +122,16 @@ def main():
                                 copy_function=os.link)
         spec = os.path.join(args.out, f"w{w:g}.toml")
         with open(spec, "w") as f:
-            f.write(spec_with(base_text, demo, run, {"align-weight": w, "compare": "false"}))
+            f.write(spec_text(base_text, demo, run, {"fit": {"align-weight": w, "compare": "false"}}))
         run_fit(args.bin, spec, args.threads)
         runs[w] = run
 
     weights = sorted(runs)
-    dims = metrics(base)["action_dims"]
-    lo_table = table(metrics(base), EVAL)
-    lo_clips = {c["clip"]: c for c in lo_table["per_clip"]}
-    semi = {w: {c["clip"]: c for c in table(metrics(runs[w]), EVAL)["per_clip"]} for w in weights}
-    holdout = {w: table(metrics(runs[w]), "holdout")["models"]["semi"]["mean_r2"] for w in weights}
+    loaded = {w: metrics(runs[w]) for w in weights}
+    dims = loaded[own]["action_dims"]
+    lo_clips = {c["clip"]: c for c in table(loaded[own], EVAL)["per_clip"]}
+    semi = {w: {c["clip"]: c for c in table(loaded[w], EVAL)["per_clip"]} for w in weights}
+    holdout = {w: table(loaded[w], "holdout")["models"]["semi"]["mean_r2"] for w in weights}
     clips = sorted(lo_clips)
     eligible = [w for w in weights if holdout[w] >= HOLDOUT_BAR]
 

@@ -109,6 +109,15 @@ impl Acc {
         self.sae += (y - mean).abs();
         self.nll += 0.5 * (LN_2PI + var.ln() + (y - mean).powi(2) / var);
     }
+    /// Adds another set of running sums (they are all additive).
+    fn merge(&mut self, other: &Acc) {
+        self.n += other.n;
+        self.sum_y += other.sum_y;
+        self.sum_y2 += other.sum_y2;
+        self.sse += other.sse;
+        self.sae += other.sae;
+        self.nll += other.nll;
+    }
     fn finish(&self) -> DimMetrics {
         let n = self.n.max(1) as f64;
         let sst = self.sum_y2 - self.sum_y * self.sum_y / n;
@@ -158,26 +167,27 @@ impl<'a> Evaluator<'a> {
     ) {
         self.clips += 1;
         self.transitions += truth.len();
+        // This clip's sums, then folded into the set's.
         let mut clip: Vec<Vec<Acc>> =
             vec![vec![Acc::default(); self.dims.len()]; self.models.len()];
+        let last = self.models.len() - 1;
         for (k, row) in truth.iter().enumerate() {
             for d in 0..self.dims.len() {
                 let y = f64::from(row[d]);
                 for (mi, (m, s)) in preds.iter().enumerate() {
-                    let (mean, std) = (f64::from(m[k][d]), f64::from(s[k][d]));
-                    self.models[mi].1[d].add(y, mean, std);
-                    clip[mi][d].add(y, mean, std);
+                    clip[mi][d].add(y, f64::from(m[k][d]), f64::from(s[k][d]));
                 }
-                let last = self.models.len() - 1;
-                self.models[last].1[d].add(y, base.mean[d], base.std[d]);
                 clip[last][d].add(y, base.mean[d], base.std[d]);
             }
         }
         let models = self
             .models
-            .iter()
+            .iter_mut()
             .zip(&clip)
-            .map(|((name, _), accs)| {
+            .map(|((name, set), accs)| {
+                for (total, a) in set.iter_mut().zip(accs) {
+                    total.merge(a);
+                }
                 let dims = self
                     .dims
                     .iter()
