@@ -65,12 +65,15 @@ wait_jobs() { # ids...
   while [ -n "$(squeue -h -o %i -j "$ids" 2>/dev/null)" ]; do sleep 0.2; done
 }
 
-# Waits for FILE with a shell test every 0.05 s: polling squeue as often would
-# take CPU from the decoding tasks on a 2-core machine (each call is a process
-# and a request to slurmctld), which hurts the 2-part run more than the 1-part
-# run, whose second core is free.
+# Waits for FILE, checking every 0.05 s from one Python process: polling
+# squeue as often would take CPU from the decoding tasks on a 2-core machine
+# (each call is a process and a request to slurmctld), and so would a shell
+# loop that starts a `sleep` process 20 times a second; either hurts the
+# 2-part run more than the 1-part run, whose second core is free.
 wait_file() { # file
-  while [ ! -f "$1" ]; do sleep 0.05; done
+  python3 -c 'import os, sys, time
+while not os.path.isfile(sys.argv[1]):
+    time.sleep(0.05)' "$1"
 }
 
 measure() { # name parts -> "wall slowest merge frames"

@@ -5,6 +5,7 @@
 //! this module's private files (`probe`, `convert`, [`video`]); [`stage`] runs
 //! the stage over every clip.
 
+mod commit;
 mod convert;
 mod error;
 mod probe;

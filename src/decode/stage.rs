@@ -21,12 +21,12 @@ use std::time::Instant;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
+use super::commit::{Committed, Pending, with_committer};
 use super::{DecodeOptions, OnError, decode_clip, probe_checked};
 use crate::actions::{self, MapRule};
 use crate::runner::StageContext;
 use crate::store::{
     ClipRecord, ClipStatus, FrameReader, FrameWriter, SourceInfo, StageManifest, read_json,
-    write_json_atomic,
 };
 
 /// Errors of the decode stage as a whole (a bad clip under `skip` is not one).
@@ -204,35 +204,75 @@ pub fn decode_part(
     let first_error: std::sync::Mutex<Option<(String, String, String)>> = Default::default();
     let progress = crate::util::Progress::new("decode", selected.len() as u64);
     let pool = crate::util::thread_pool(params.threads);
-    let outcomes: Vec<Outcome> = pool.install(|| {
-        selected
-            .par_iter()
-            .with_max_len(1)
-            .map(|&job| {
-                if stop.load(Ordering::SeqCst) {
-                    return Outcome::Cancelled;
-                }
-                let header = headers.get(&job.set).map(Vec::as_slice);
-                let outcome = match decode_one(job, header, params, &stop) {
-                    Ok(Some((record, reused))) => Outcome::Done(Box::new(record), reused),
-                    Ok(None) => Outcome::Cancelled,
-                    Err(failure) => {
-                        let (source, reason) = *failure;
-                        if params.opts.on_error == OnError::Stop {
-                            stop.store(true, Ordering::SeqCst);
-                            let mut first = first_error.lock().unwrap();
-                            if first.is_none() {
-                                *first = Some((job.set.clone(), job.id.clone(), reason.clone()));
-                            }
+    let record_failure = |set: &str, id: &str, reason: &str| {
+        if params.opts.on_error == OnError::Stop {
+            stop.store(true, Ordering::SeqCst);
+            let mut first = first_error.lock().unwrap();
+            if first.is_none() {
+                *first = Some((set.to_string(), id.to_string(), reason.to_string()));
+            }
+        }
+    };
+    let commit_failed = |index: usize, reason: &str| {
+        let job = selected[index];
+        record_failure(&job.set, &job.id, reason);
+    };
+    // Workers decode; one thread syncs and renames finished clips behind them.
+    let (mut outcomes, committed): (Vec<Outcome>, _) =
+        with_committer(&stop, &commit_failed, |committer| {
+            pool.install(|| {
+                selected
+                    .par_iter()
+                    .enumerate()
+                    .with_max_len(1)
+                    .map(|(index, &job)| {
+                        if stop.load(Ordering::SeqCst) {
+                            return Outcome::Cancelled;
                         }
-                        Outcome::Skipped(source, reason)
-                    }
-                };
-                progress.inc(1);
-                outcome
+                        let header = headers.get(&job.set).map(Vec::as_slice);
+                        let outcome = match decode_one(job, header, params, &stop) {
+                            Ok(Some(Decoded::Reused(record))) => Outcome::Done(record, true),
+                            Ok(Some(Decoded::Finished(writer, record))) => {
+                                let record_path =
+                                    ClipRecord::record_path(&params.decode_dir, &job.set, &job.id);
+                                let done = Outcome::Done(record.clone(), false);
+                                let pending = Pending {
+                                    index,
+                                    writer,
+                                    record: *record,
+                                    record_path,
+                                };
+                                match committer.send(pending) {
+                                    Ok(()) => done,
+                                    Err(_) => Outcome::Cancelled,
+                                }
+                            }
+                            Ok(None) => Outcome::Cancelled,
+                            Err(failure) => {
+                                let (source, reason) = *failure;
+                                record_failure(&job.set, &job.id, &reason);
+                                Outcome::Skipped(source, reason)
+                            }
+                        };
+                        progress.inc(1);
+                        outcome
+                    })
+                    .collect()
             })
-            .collect()
-    });
+        });
+    for (index, result) in committed {
+        match result {
+            Committed::Done => {}
+            Committed::Cancelled => outcomes[index] = Outcome::Cancelled,
+            Committed::Failed(reason) => {
+                let source = match &outcomes[index] {
+                    Outcome::Done(record, _) => Some(record.source.clone()),
+                    _ => None,
+                };
+                outcomes[index] = Outcome::Skipped(source, reason);
+            }
+        }
+    }
     progress.finish();
     if let Some((set, id, reason)) = first_error.into_inner().unwrap() {
         return Err(DecodeStageError::Stopped { set, id, reason });
@@ -402,17 +442,27 @@ fn reusable(decode_dir: &Path, job: &ClipJob, key: &str) -> Option<ClipRecord> {
 /// Why a clip failed: its source (when probed) and the reason.
 type ClipFailure = Box<(Option<SourceInfo>, String)>;
 
-/// Decodes one clip and writes its frames and record; `Ok(None)` when the
-/// stage was stopped by another clip before this one wrote its final files.
+/// A clip [`decode_one`] is done with.
+enum Decoded {
+    /// Its record and frames from an earlier run are current.
+    Reused(Box<ClipRecord>),
+    /// Decoded now: all frames written to the (still temporary) frame store,
+    /// and the record to write once the frames are in place.
+    Finished(FrameWriter, Box<ClipRecord>),
+}
+
+/// Decodes one clip into its frame store and builds its record; `Ok(None)`
+/// when the stage was stopped by another clip meanwhile. The caller commits
+/// a finished clip (see [`super::commit`]).
 fn decode_one(
     job: &ClipJob,
     header: Option<&[String]>,
     params: &DecodeParams,
     stop: &AtomicBool,
-) -> Result<Option<(ClipRecord, bool)>, ClipFailure> {
+) -> Result<Option<Decoded>, ClipFailure> {
     let key = clip_key(job, params);
     if let Some(record) = reusable(&params.decode_dir, job, &key) {
-        return Ok(Some((record, true)));
+        return Ok(Some(Decoded::Reused(Box::new(record))));
     }
     if job.sha256.is_empty() && !job.path.is_file() {
         return Err(Box::new((
@@ -467,7 +517,6 @@ fn decode_one(
         // Dropping the writer removes its temporary file.
         return Ok(None);
     }
-    writer.finish().map_err(|e| fail(e.to_string()))?;
     let record = ClipRecord {
         id: job.id.clone(),
         set: job.set.clone(),
@@ -489,10 +538,7 @@ fn decode_one(
         sidecar: job.sidecar.clone().filter(|_| job.labelled),
         sidecar_fingerprint: job.sidecar_sha256.clone().filter(|_| job.labelled),
     };
-    let record_path = ClipRecord::record_path(&params.decode_dir, &job.set, &job.id);
-    write_json_atomic(&record_path, &record)
-        .map_err(|e| fail(format!("{}: {e}", record_path.display())))?;
-    Ok(Some((record, false)))
+    Ok(Some(Decoded::Finished(writer, Box::new(record))))
 }
 
 /// Removes frame stores and records under `root` that are not in `keep`

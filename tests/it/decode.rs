@@ -875,6 +875,41 @@ mod stage {
         );
     }
 
+    #[test]
+    fn a_record_that_cannot_be_written_is_named_and_the_clip_redone_next_time() {
+        if !util::require_ffmpeg() {
+            return;
+        }
+        let dir = tempfile::tempdir().unwrap();
+        let (_a, b, _bad) = clips(dir.path());
+        let c = dir.path().join("c.mp4");
+        std::fs::copy(&b, &c).unwrap();
+        let run = dir.path().join("run");
+        let dec = run.join("decode");
+        // A folder where c's record should go: the rename onto it fails
+        // after c's frames were synced and renamed by the committing thread.
+        let blocked = ClipRecord::record_path(&dec, "human", "c");
+        std::fs::create_dir_all(&blocked).unwrap();
+        let jobs = vec![job("human", false, &b), job("human", false, &c)];
+        let m = decode_all(&params(jobs.clone(), &run, OnError::Skip)).unwrap();
+        assert_eq!((m.counts["decoded"], m.counts["skipped"]), (1, 1));
+        let reason = m.clips[1].reason.as_deref().unwrap();
+        assert!(reason.contains("c.clip.json"), "{reason}");
+        assert!(ClipRecord::record_path(&dec, "human", "b").is_file());
+        // Under "stop" the same failure stops the stage and names the file.
+        let err = decode_all(&params(jobs.clone(), &run, OnError::Stop))
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains("c.clip.json") && err.contains("stop"), "{err}");
+        // Once the obstacle is gone, a rerun decodes c and reuses b.
+        std::fs::remove_dir(&blocked).unwrap();
+        let m = decode_all(&params(jobs, &run, OnError::Skip)).unwrap();
+        assert_eq!((m.counts["decoded"], m.counts["reused"]), (1, 1));
+        let record: ClipRecord = read_json(&blocked).unwrap();
+        let frames = FrameReader::open(&ClipRecord::frames_path(&dec, "human", "c")).unwrap();
+        assert_eq!(frames.len(), record.frames as usize);
+    }
+
     fn walk(dir: &Path) -> Vec<PathBuf> {
         let mut out = Vec::new();
         if let Ok(entries) = std::fs::read_dir(dir) {
