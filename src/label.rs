@@ -93,6 +93,12 @@ pub enum LabelError {
         #[source]
         source: std::io::Error,
     },
+    /// A decoded clip's frames could not be read.
+    #[error(transparent)]
+    Frames(#[from] crate::store::FrameStoreError),
+    /// A clip's PNG frame store could not be written.
+    #[error(transparent)]
+    PngFrames(#[from] crate::store::png_frames::PngStoreError),
     /// The align stage's view could not be opened, read or mapped back.
     #[error(transparent)]
     Align(#[from] crate::align::AlignError),
@@ -197,6 +203,7 @@ pub fn run_stage(
         opts: &ctx.spec.label,
         seed: ctx.spec.seed,
         threads: ctx.threads,
+        frame_pngs: ctx.spec.shard.image == crate::shard::ImageEncoding::Png,
     };
     // A part of a partitioned run labels only its own clips (see `crate::cluster`).
     let include = |set: &str, id: &str| ctx.includes(set, id);

@@ -324,7 +324,9 @@ pub fn settings_hash(spec: &Spec, stage: Stage) -> String {
             let truths: Vec<_> = spec.sets.iter().map(|s| &s.eval_truth).collect();
             util::sha256_json(&(stage, &spec.fit, spec.seed, truths))
         }
-        Stage::Label => util::sha256_json(&(stage, &spec.label, spec.seed)),
+        // The shard stage's image encoding too: with PNG images, label also
+        // writes each clip's frames as PNG (see `crate::store::png_frames`).
+        Stage::Label => util::sha256_json(&(stage, &spec.label, spec.seed, &spec.shard.image)),
         Stage::Shard => util::sha256_json(&(stage, &spec.shard, spec.seed)),
     }
 }

@@ -106,17 +106,16 @@ pub enum ShardError {
         /// What differs.
         reason: String,
     },
-    /// PNG encoding failed.
-    #[error("encoding frame {frame} of clip {set}/{id} as PNG: {message}")]
-    Png {
-        /// Set.
-        set: String,
-        /// Clip id.
-        id: String,
-        /// Frame index.
-        frame: u32,
-        /// The encoder's message.
-        message: String,
+    /// A clip's PNG frame store (written by the label stage) is unreadable.
+    #[error(transparent)]
+    PngFrames(#[from] crate::store::png_frames::PngStoreError),
+    /// A clip's PNG frame store is missing.
+    #[error(
+        "{path} is missing: the label stage writes it when [shard] image = \"png\"; run the label stage again (delete RUN/label/manifest.json, then `actuary run`)"
+    )]
+    PngFramesMissing {
+        /// The file expected.
+        path: PathBuf,
     },
     /// Arrow or Parquet failed while writing a shard.
     #[error("writing shard {path}: {message}")]

@@ -4,6 +4,9 @@
 //! - `clips/<set>/<clip-id>.labels.json`: a [`ClipLabels`] per decoded clip,
 //!   one entry per transition (`frames - 1`), written atomically; a clip is
 //!   done when its file exists with the stage key (that is how label resumes).
+//! - `clips/<set>/<clip-id>.png-frames`: every decoded frame of the clip as
+//!   PNG bytes (see [`crate::store::png_frames`]), for the shard stage; only
+//!   with `[shard] image = "png"`, written before the labels file.
 //! - `state.json`: the fitted calibration and codes ([`LabelState`]), so a
 //!   resumed run does not refit them.
 //! - `calibration.json`: the calibration figures ([`CalibrationFigures`]).
@@ -66,6 +69,11 @@ impl ClipLabels {
     pub fn read(label_dir: &Path, set: &str, id: &str) -> std::io::Result<Self> {
         crate::store::read_json(&Self::path(label_dir, set, id))
     }
+}
+
+/// Path of the PNG frame store of clip `(set, id)` under `label_dir`.
+pub fn png_frames_path(label_dir: &Path, set: &str, id: &str) -> PathBuf {
+    with_suffix(&label_dir.join("clips").join(set).join(id), ".png-frames")
 }
 
 /// One action dimension's calibration.

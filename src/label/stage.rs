@@ -33,7 +33,7 @@ use super::model::{FitOutputs, Split, Standardisation, TransitionModel};
 use super::motion_range;
 use super::output::{
     CALIBRATION_FILE, CODES_FILE, CalibrationFigures, ClipLabels, CodeRow, CodesTable,
-    DimCalibration, LabelState, STATE_FILE, decoded_clips,
+    DimCalibration, LabelState, STATE_FILE, decoded_clips, png_frames_path,
 };
 use super::reliability::{self, Isotonic, METHOD};
 use super::stats::{normal_quantile, prob_within};
@@ -42,6 +42,7 @@ use crate::actions::MapRule;
 use crate::align::{AlignError, AlignedClip, AlignedRun};
 use crate::model::Rng;
 use crate::store::ClipRecord;
+use crate::store::png_frames::{PngFrameReader, write_png_frames};
 
 /// One transition's model outputs in action units.
 #[derive(Debug, Clone)]
@@ -70,6 +71,9 @@ pub struct LabelJob<'a> {
     pub seed: u64,
     /// Worker threads.
     pub threads: usize,
+    /// Also PNG-encode every decoded frame of each clip into
+    /// `clips/<set>/<id>.png-frames` for the shard stage (`[shard] image = "png"`).
+    pub frame_pngs: bool,
 }
 
 /// Confidence and ood figures of one clip set.
@@ -237,21 +241,37 @@ fn run_passes(
             continue;
         }
         let path = ClipLabels::path(job.label_dir, &clip.rec.set, &clip.rec.id);
+        let pngs = png_frames_path(job.label_dir, &clip.rec.set, &clip.rec.id);
         let old: Option<ClipLabels> = crate::store::read_json(&path).ok();
-        let labels = match old.filter(|l| l.key == job.key && l.frames == clip.rec.frames) {
-            Some(l) => {
-                reused += 1;
-                l
-            }
-            None => {
-                let (raw, n) = infer_decode(job, model, rules, clip)?;
-                inferred += n as u64;
-                let l = finish_clip(job, clip, &state, &raw);
-                crate::store::write_json_atomic(&path, &l).map_err(io_at(&path))?;
-                labelled_now += 1;
-                l
-            }
+        let pngs_ok = || {
+            !job.frame_pngs
+                || PngFrameReader::open(&pngs).is_ok_and(|r| r.len() == clip.rec.frames as usize)
         };
+        let labels =
+            match old.filter(|l| l.key == job.key && l.frames == clip.rec.frames && pngs_ok()) {
+                Some(l) => {
+                    reused += 1;
+                    l
+                }
+                None => {
+                    let (raw, n) = infer_decode(job, model, rules, clip)?;
+                    inferred += n as u64;
+                    let l = finish_clip(job, clip, &state, &raw);
+                    if job.frame_pngs {
+                        // Before the labels file: a clip is done when that exists.
+                        let frames_path = ClipRecord::frames_path(
+                            &job.run_dir.join("decode"),
+                            &clip.rec.set,
+                            &clip.rec.id,
+                        );
+                        let frames = crate::store::FrameReader::open(&frames_path)?;
+                        write_png_frames(&frames, &pngs)?;
+                    }
+                    crate::store::write_json_atomic(&path, &l).map_err(io_at(&path))?;
+                    labelled_now += 1;
+                    l
+                }
+            };
         let s = sets.entry(clip.rec.set.clone()).or_default();
         s.clips += 1;
         let size = motion_range::motion_size(labels.action_est.iter().map(Vec::as_slice), a);

@@ -32,10 +32,11 @@ use sha2::{Digest, Sha256};
 
 use super::schema::{ColumnInfo, columns, schema};
 use super::{ImageEncoding, ShardError, ShardOptions};
-use crate::label::output::{CALIBRATION_FILE, CODES_FILE, decoded_clips};
+use crate::label::output::{CALIBRATION_FILE, CODES_FILE, decoded_clips, png_frames_path};
 use crate::label::{CalibrationFigures, ClipLabels, Standardisation};
 use crate::model::Rng;
 use crate::store::manifest::MANIFEST_FILE;
+use crate::store::png_frames::PngFrameReader;
 use crate::store::{ClipRecord, FrameReader};
 
 /// One shard file as the manifest records it.
@@ -140,7 +141,14 @@ pub struct ShardJob<'a> {
 struct Clip {
     rec: ClipRecord,
     labels: ClipLabels,
-    frames: FrameReader,
+    images: ClipImages,
+}
+
+/// Where a clip's `image` values come from: the decode stage's raw frames, or
+/// the PNG frames the label stage encoded from them.
+enum ClipImages {
+    Raw(FrameReader),
+    Png(PngFrameReader),
 }
 
 fn io_at(path: &Path) -> impl FnOnce(io::Error) -> ShardError + '_ {
@@ -199,11 +207,23 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
                 rec.frames
             )));
         }
-        let frames = FrameReader::open(&ClipRecord::frames_path(&decode_dir, &rec.set, &rec.id))?;
+        let images =
+            match job.opts.image {
+                ImageEncoding::Raw => ClipImages::Raw(FrameReader::open(
+                    &ClipRecord::frames_path(&decode_dir, &rec.set, &rec.id),
+                )?),
+                ImageEncoding::Png => {
+                    let path = png_frames_path(&label_dir, &rec.set, &rec.id);
+                    if !path.exists() {
+                        return Err(ShardError::PngFramesMissing { path });
+                    }
+                    ClipImages::Png(PngFrameReader::open(&path)?)
+                }
+            };
         clips.push(Clip {
             rec,
             labels,
-            frames,
+            images,
         });
     }
     let (width, height, fps) = clips
@@ -231,12 +251,20 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
                 c.rec.width, c.rec.height, c.rec.fps
             )));
         }
-        if (c.frames.width(), c.frames.height(), c.frames.len())
-            != (width, height, c.rec.frames as usize)
-        {
+        let matches = match &c.images {
+            ClipImages::Raw(f) => {
+                (f.width(), f.height(), f.len()) == (width, height, c.rec.frames as usize)
+            }
+            ClipImages::Png(p) => p.len() == c.rec.frames as usize,
+        };
+        if !matches {
+            let path = match &c.images {
+                ClipImages::Raw(f) => f.path().to_path_buf(),
+                ClipImages::Png(_) => png_frames_path(&label_dir, &c.rec.set, &c.rec.id),
+            };
             return Err(inconsistent(format!(
                 "frame store {} does not match the clip record",
-                c.frames.path().display()
+                path.display()
             )));
         }
         if c.rec.labelled && c.rec.action_dims != action_dims {
@@ -432,42 +460,50 @@ fn fits_in_binary_array(bytes: usize, g: usize) -> Result<(), ShardError> {
 
 /// The raw RGB frames of a row group, read straight into one values buffer.
 fn raw_images(clips: &[Clip], group: &[(u32, u32)], g: usize) -> Result<BinaryArray, ShardError> {
-    let frame_bytes = clips.first().map_or(0, |c| c.frames.frame_bytes());
+    let frame_bytes = clips
+        .first()
+        .map_or(0, |c| c.rec.width as usize * c.rec.height as usize * 3);
     fits_in_binary_array(group.len() * frame_bytes, g)?;
     let mut values = vec![0u8; group.len() * frame_bytes];
     if frame_bytes > 0 {
         values
             .par_chunks_mut(frame_bytes)
             .zip(group.par_iter())
-            .try_for_each(|(out, &(ci, f))| clips[ci as usize].frames.read_into(f as usize, out))?;
+            .try_for_each(|(out, &(ci, f))| match &clips[ci as usize].images {
+                ClipImages::Raw(frames) => frames.read_into(f as usize, out),
+                ClipImages::Png(_) => unreachable!("raw images come from frame stores"),
+            })?;
     }
     let offsets = OffsetBuffer::from_lengths(std::iter::repeat_n(frame_bytes, group.len()));
     Ok(BinaryArray::new(offsets, Buffer::from_vec(values), None))
 }
 
-/// The frames of a row group, PNG-encoded in parallel.
+/// The PNG frames of a row group (encoded by the label stage), read with
+/// positioned reads straight into one values buffer.
 fn png_images(clips: &[Clip], group: &[(u32, u32)], g: usize) -> Result<BinaryArray, ShardError> {
-    let pngs: Vec<Vec<u8>> = group
-        .par_iter()
-        .map_init(Vec::new, |rgb, &(ci, f)| {
-            let c = &clips[ci as usize];
-            rgb.resize(c.frames.frame_bytes(), 0);
-            c.frames.read_into(f as usize, rgb)?;
-            crate::export::encode_png(rgb, c.rec.width, c.rec.height).map_err(|e| ShardError::Png {
-                set: c.rec.set.clone(),
-                id: c.rec.id.clone(),
-                frame: f,
-                message: e.to_string(),
-            })
-        })
-        .collect::<Result<_, _>>()?;
-    let bytes = pngs.iter().map(Vec::len).sum();
+    let store = |ci: u32| match &clips[ci as usize].images {
+        ClipImages::Png(p) => p,
+        ClipImages::Raw(_) => unreachable!("PNG images come from PNG frame stores"),
+    };
+    let lengths: Vec<usize> = group
+        .iter()
+        .map(|&(ci, f)| store(ci).png_len(f as usize))
+        .collect();
+    let bytes = lengths.iter().sum();
     fits_in_binary_array(bytes, g)?;
-    let mut values = Vec::with_capacity(bytes);
-    for p in &pngs {
-        values.extend_from_slice(p);
+    let mut values = vec![0u8; bytes];
+    let mut slices = Vec::with_capacity(group.len());
+    let mut rest = values.as_mut_slice();
+    for &n in &lengths {
+        let (head, tail) = rest.split_at_mut(n);
+        slices.push(head);
+        rest = tail;
     }
-    let offsets = OffsetBuffer::from_lengths(pngs.iter().map(Vec::len));
+    slices
+        .into_par_iter()
+        .zip(group.par_iter())
+        .try_for_each(|(out, &(ci, f))| store(ci).read_into(f as usize, out))?;
+    let offsets = OffsetBuffer::from_lengths(lengths);
     Ok(BinaryArray::new(offsets, Buffer::from_vec(values), None))
 }
 

@@ -5,6 +5,7 @@ pub mod atomic;
 pub mod clips;
 pub mod frames;
 pub mod manifest;
+pub mod png_frames;
 
 pub use atomic::{AtomicFile, read_json, write_atomic, write_json_atomic};
 pub use clips::{ClipRecord, SourceInfo};

@@ -202,6 +202,7 @@ fn label(
         opts: &opts,
         seed: 7,
         threads,
+        frame_pngs: true,
     };
     label_run(&job, &fit, &view(run)).unwrap_or_else(|e| panic!("label: {e}"))
 }

@@ -332,7 +332,8 @@ mod bench {
     };
     use actuary::model::{Config, Net, SeededInit};
     use actuary::shard::{ImageEncoding, ShardOptions};
-    use actuary::store::{ClipRecord, FrameWriter, write_json_atomic};
+    use actuary::store::png_frames::write_png_frames;
+    use actuary::store::{ClipRecord, FrameReader, FrameWriter, write_json_atomic};
     use candle_core::{DType, Device};
 
     const SIZE: u32 = 64;
@@ -394,6 +395,7 @@ mod bench {
             opts: &opts,
             seed: 1,
             threads: 2,
+            frame_pngs: true,
         };
         actuary::label::label_run(&job, &fit, &crate::label::view(run)).unwrap();
     }
@@ -423,6 +425,28 @@ mod bench {
             .and_then(|v| v.parse().ok())
             .unwrap_or(200);
         smooth_run(&run, clips, 100);
+        // The PNG encoding the label stage does for these rows (it writes a
+        // PNG frame store per clip), timed alone on 2 threads: the shard
+        // stage's PNG figures below only copy those bytes.
+        let scratch = run.join("png-encode");
+        let decode = run.join("decode");
+        let pool = actuary::util::thread_pool(2);
+        let (t0, c0) = (Instant::now(), process_cpu_seconds());
+        let mut rows = 0;
+        for c in 0..clips {
+            let id = format!("pick-{c:03}");
+            let frames =
+                FrameReader::open(&ClipRecord::frames_path(&decode, "robot", &id)).unwrap();
+            let out = scratch.join(format!("{id}.png-frames"));
+            rows += pool.install(|| write_png_frames(&frames, &out)).unwrap();
+        }
+        let secs = t0.elapsed().as_secs_f64();
+        println!(
+            "BENCH {{\"what\":\"png-encode\",\"threads\":2,\"rows\":{rows},\"seconds\":{secs},\"cpu_seconds\":{:.3},\"rows_per_s\":{}}}",
+            process_cpu_seconds() - c0,
+            rows as f64 / secs
+        );
+        let _ = std::fs::remove_dir_all(&scratch);
         for (threads, image, name) in [
             (1usize, ImageEncoding::Png, "png"),
             (2, ImageEncoding::Png, "png"),
@@ -586,6 +610,7 @@ mod bench {
             opts: &opts,
             seed: 1,
             threads: 2,
+            frame_pngs: true,
         };
         let t0 = Instant::now();
         let s = actuary::label::label_run(&job, &fit, &crate::label::view(&run)).unwrap();
