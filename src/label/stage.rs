@@ -254,19 +254,17 @@ fn run_passes(
                     l
                 }
                 None => {
-                    let (raw, n) = infer_decode(job, model, rules, clip)?;
+                    // The PNG frame store is encoded and synced while the
+                    // clip is inferred; both are done before the labels file
+                    // is written, since a clip is done when that exists.
+                    let (inferred_clip, pngs_written) = rayon::join(
+                        || infer_decode(job, model, rules, clip),
+                        || write_clip_pngs(job, clip, &pngs),
+                    );
+                    let (raw, n) = inferred_clip?;
+                    pngs_written?;
                     inferred += n as u64;
                     let l = finish_clip(job, clip, &state, &raw);
-                    if job.frame_pngs {
-                        // Before the labels file: a clip is done when that exists.
-                        let frames_path = ClipRecord::frames_path(
-                            &job.run_dir.join("decode"),
-                            &clip.rec.set,
-                            &clip.rec.id,
-                        );
-                        let frames = crate::store::FrameReader::open(&frames_path)?;
-                        write_png_frames(&frames, &pngs)?;
-                    }
                     crate::store::write_json_atomic(&path, &l).map_err(io_at(&path))?;
                     labelled_now += 1;
                     l
@@ -539,6 +537,17 @@ fn finalise(raw: &RawTransition, cal: &CalibrationFigures, q: &[f64], iso: &Isot
         confidence: iso.apply(raw_conf),
         ood: raw.disagreement > cal.ood_threshold,
     }
+}
+
+/// Writes the clip's PNG frame store when the job asks for one.
+fn write_clip_pngs(job: &LabelJob<'_>, clip: &Clip, path: &Path) -> Result<(), LabelError> {
+    if job.frame_pngs {
+        let decode_dir = job.run_dir.join("decode");
+        let frames_path = ClipRecord::frames_path(&decode_dir, &clip.rec.set, &clip.rec.id);
+        let frames = crate::store::FrameReader::open(&frames_path)?;
+        write_png_frames(&frames, path)?;
+    }
+    Ok(())
 }
 
 fn finish_clip(
