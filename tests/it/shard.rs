@@ -172,6 +172,57 @@ fn duckdb_and_polars_agree_with_the_manifest() {
 }
 
 #[test]
+fn png_frames_come_from_the_label_stage_and_a_missing_store_is_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let run = dir.path();
+    let first = fake_run(run, 6, 4);
+    let label_dir = run.join("label");
+    let (set, id) = ("robot", "pick-03");
+    let store = actuary::label::output::png_frames_path(&label_dir, set, id);
+    // The label stage wrote one PNG per decoded frame, each the encoder's
+    // bytes for that frame (Pillow checks the pixels in another test).
+    let pngs = actuary::store::png_frames::PngFrameReader::open(&store).unwrap();
+    let rec: actuary::store::ClipRecord = actuary::store::read_json(
+        &actuary::store::ClipRecord::record_path(&run.join("decode"), set, id),
+    )
+    .unwrap();
+    assert_eq!(pngs.len(), rec.frames as usize);
+    drop(pngs);
+
+    std::fs::remove_file(&store).unwrap();
+    let job = ShardJob {
+        run_dir: run,
+        shard_dir: &run.join("shard"),
+        opts: &small(),
+        seed: 7,
+        threads: 2,
+    };
+    let err = write_shards(&job).unwrap_err().to_string();
+    assert!(
+        err.contains("pick-03.png-frames") && err.contains("label stage"),
+        "{err}"
+    );
+    // Raw images do not need it.
+    let raw = ShardOptions {
+        image: ImageEncoding::Raw,
+        ..small()
+    };
+    shard(run, &raw, 2);
+    // Labelling again redoes only the clip whose store is missing.
+    let again = fake_run(run, 6, 4);
+    assert_eq!(
+        (again.clips_labelled, again.clips_reused),
+        (1, first.clips_labelled - 1)
+    );
+    assert!(store.is_file());
+    // A damaged store is refused with its path.
+    let bytes = std::fs::read(&store).unwrap();
+    std::fs::write(&store, &bytes[..bytes.len() / 2]).unwrap();
+    let err = write_shards(&job).unwrap_err().to_string();
+    assert!(err.contains("pick-03.png-frames"), "{err}");
+}
+
+#[test]
 fn two_fresh_runs_are_byte_identical_and_reruns_rewrite_nothing() {
     let a = tempfile::tempdir().unwrap();
     let b = tempfile::tempdir().unwrap();
