@@ -16,6 +16,7 @@ mod cluster_cmd;
 fn main() -> ExitCode {
     let cli = Cli::parse();
     bound_candle_threads(&cli.command);
+    raise_open_file_limit();
     match dispatch(cli.command) {
         Ok(code) => ExitCode::from(code as u8),
         Err(err) => {
@@ -26,9 +27,63 @@ fn main() -> ExitCode {
             for cause in err.chain().skip(1) {
                 eprintln!("  caused by: {cause}");
             }
+            if is_too_many_open_files(&err) {
+                eprintln!(
+                    "hint: align, fit, label and shard keep one file open per clip; this process \
+                     may open {} files (`ulimit -Hn`); raise that limit above the number of clips",
+                    open_file_limit().map_or("an unknown number of".into(), |n| n.to_string())
+                );
+            }
             ExitCode::from(EXIT_FAILURE as u8)
         }
     }
+}
+
+/// The stages after decode keep one file open per clip (frame stores are read
+/// with positioned reads), so a run of more than about a thousand clips needs
+/// more than the usual soft limit of 1024 open files. Raise the soft limit to
+/// the hard one at start-up, as some language runtimes do; a failure leaves
+/// the limit as it was.
+fn raise_open_file_limit() {
+    #[cfg(unix)]
+    {
+        let mut limit = libc::rlimit {
+            rlim_cur: 0,
+            rlim_max: 0,
+        };
+        // SAFETY: getrlimit and setrlimit only read and write the struct passed.
+        unsafe {
+            if libc::getrlimit(libc::RLIMIT_NOFILE, &mut limit) == 0
+                && limit.rlim_cur < limit.rlim_max
+            {
+                limit.rlim_cur = limit.rlim_max;
+                let _ = libc::setrlimit(libc::RLIMIT_NOFILE, &limit);
+            }
+        }
+    }
+}
+
+/// This process's soft limit on open files.
+fn open_file_limit() -> Option<u64> {
+    #[cfg(unix)]
+    {
+        let mut limit = libc::rlimit {
+            rlim_cur: 0,
+            rlim_max: 0,
+        };
+        // SAFETY: getrlimit only writes the struct passed.
+        if unsafe { libc::getrlimit(libc::RLIMIT_NOFILE, &mut limit) } == 0 {
+            return Some(limit.rlim_cur as u64);
+        }
+    }
+    None
+}
+
+fn is_too_many_open_files(err: &anyhow::Error) -> bool {
+    err.chain().any(|c| {
+        c.downcast_ref::<std::io::Error>()
+            .is_some_and(|e| e.raw_os_error() == Some(libc::EMFILE))
+    })
 }
 
 /// candle sizes its element-wise worker pool from `CANDLE_NUM_THREADS` (or the

@@ -290,3 +290,50 @@ fn walk(dir: &Path) -> Vec<PathBuf> {
     }
     out
 }
+
+/// Runs `actuary ARGS` under bash with `ulimit ULIMIT_ARGS` first.
+fn actuary_under_ulimit(ulimit: &str, args: &[&str]) -> (i32, String) {
+    let out = std::process::Command::new("bash")
+        .arg("-c")
+        .arg(format!("ulimit {ulimit} && exec \"$0\" \"$@\""))
+        .arg(env!("CARGO_BIN_EXE_actuary"))
+        .args(args)
+        .env("ACTUARY_QUIET", "1")
+        .output()
+        .expect("bash runs");
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+#[test]
+fn more_clips_than_the_soft_open_file_limit_run_and_a_hard_limit_is_named() {
+    if !require_ffmpeg() {
+        return;
+    }
+    // 2 robot clips and 70 human clips (copies of one) against a limit of 48
+    // open files: align opens every clip's frame store and keeps it open.
+    let f = fixture(2, 1, "");
+    for i in 1..70 {
+        std::fs::copy(
+            f.root.join("human/h0.mp4"),
+            f.root.join(format!("human/h0-copy{i}.mp4")),
+        )
+        .unwrap();
+    }
+    let args = [s(&f.spec), "--until", "align"];
+    // The soft limit (what `ulimit -n` shows on most desktops: 1024) is raised
+    // to the hard one at start-up, so the run goes through.
+    let (code, err) = actuary_under_ulimit("-Sn 48", &[&["run"][..], &args].concat());
+    assert_eq!(code, 0, "{err}");
+    assert!(f.root.join("run/align/manifest.json").is_file());
+    // A hard limit below the clip count stops the run with the cause and a hint.
+    std::fs::remove_dir_all(f.root.join("run")).unwrap();
+    let (code, err) = actuary_under_ulimit("-n 48", &[&["run"][..], &args].concat());
+    assert_ne!(code, 0);
+    assert!(
+        err.contains("Too many open files") && err.contains("ulimit -Hn") && err.contains("48"),
+        "{err}"
+    );
+}
