@@ -9,6 +9,8 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 work="${BENCH_DIR:-$(mktemp -d)}"
+# A folder of our own (no BENCH_DIR) holds about 1.2 GB of runs: removed at exit.
+[ -n "${BENCH_DIR:-}" ] || trap 'rm -rf "$work"' EXIT
 export ACTUARY_BENCH_RUN="$work/run"
 cargo test --release --test it -- --ignored --nocapture --test-threads 1 shard::bench::bench_shard_stage 2>&1 | grep -o 'BENCH {.*}'
 for image in png raw; do
