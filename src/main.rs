@@ -73,7 +73,7 @@ fn open_file_limit() -> Option<u64> {
         };
         // SAFETY: getrlimit only writes the struct passed.
         if unsafe { libc::getrlimit(libc::RLIMIT_NOFILE, &mut limit) } == 0 {
-            return Some(limit.rlim_cur as u64);
+            return Some(limit.rlim_cur);
         }
     }
     None
