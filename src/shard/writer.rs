@@ -251,17 +251,14 @@ pub fn write_shards(job: &ShardJob<'_>) -> Result<ShardSummary, ShardError> {
                 c.rec.width, c.rec.height, c.rec.fps
             )));
         }
-        let matches = match &c.images {
-            ClipImages::Raw(f) => {
-                (f.width(), f.height(), f.len()) == (width, height, c.rec.frames as usize)
-            }
-            ClipImages::Png(p) => p.len() == c.rec.frames as usize,
+        let (matches, path) = match &c.images {
+            ClipImages::Raw(f) => (
+                (f.width(), f.height(), f.len()) == (width, height, c.rec.frames as usize),
+                f.path(),
+            ),
+            ClipImages::Png(p) => (p.len() == c.rec.frames as usize, p.path()),
         };
         if !matches {
-            let path = match &c.images {
-                ClipImages::Raw(f) => f.path().to_path_buf(),
-                ClipImages::Png(_) => png_frames_path(&label_dir, &c.rec.set, &c.rec.id),
-            };
             return Err(inconsistent(format!(
                 "frame store {} does not match the clip record",
                 path.display()

@@ -178,6 +178,11 @@ impl PngFrameReader {
         self.index.len() - 1
     }
 
+    /// The file this reader reads.
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
     /// Whether the store has no frames.
     pub fn is_empty(&self) -> bool {
         self.len() == 0
