@@ -476,8 +476,16 @@ pub fn list_set(set: &SetSpec) -> Result<Vec<ClipInput>, StorageError> {
 struct Scratch {
     dir: PathBuf,
     limit: u64,
-    used: Mutex<u64>,
+    used: Mutex<ScratchUse>,
     freed: Condvar,
+}
+
+/// What scratch holds now: bytes reserved and copies not yet dropped
+/// (a copy counts from its reservation, before its download starts).
+#[derive(Default)]
+struct ScratchUse {
+    bytes: u64,
+    copies: usize,
 }
 
 fn scratch() -> &'static Mutex<Arc<Scratch>> {
@@ -500,7 +508,7 @@ fn new_scratch(dir: Option<&Path>, limit: u64) -> Scratch {
     Scratch {
         dir: base.join(format!("actuary-scratch-{}", std::process::id())),
         limit,
-        used: Mutex::new(0),
+        used: Mutex::new(ScratchUse::default()),
         freed: Condvar::new(),
     }
 }
@@ -529,10 +537,32 @@ impl Drop for LocalCopy {
     fn drop(&mut self) {
         if let Some((s, bytes)) = self.fetched.take() {
             let _ = std::fs::remove_file(&self.path);
-            let _ = std::fs::remove_dir(&s.dir);
-            *s.used.lock().unwrap() -= bytes;
+            let mut used = s.used.lock().unwrap();
+            used.bytes -= bytes;
+            used.copies -= 1;
+            // Only the last copy removes the folder, under the lock: another
+            // copy's download may be creating it between reservation and file.
+            if used.copies == 0 {
+                let _ = std::fs::remove_dir(&s.dir);
+            }
+            drop(used);
             s.freed.notify_all();
         }
+    }
+}
+
+/// Waits until `size` more bytes fit in scratch `s`, then reserves them
+/// for a copy named `file_name` (not yet written; dropping it releases them).
+fn reserve(s: &Arc<Scratch>, size: u64, file_name: &str) -> LocalCopy {
+    let mut used = s.used.lock().unwrap();
+    while used.bytes + size > s.limit {
+        used = s.freed.wait(used).unwrap();
+    }
+    used.bytes += size;
+    used.copies += 1;
+    LocalCopy {
+        path: s.dir.join(file_name),
+        fetched: Some((s.clone(), size)),
     }
 }
 
@@ -564,13 +594,6 @@ pub fn local_copy(path: &Path) -> Result<LocalCopy, StorageError> {
             limit: s.limit,
         });
     }
-    {
-        let mut used = s.used.lock().unwrap();
-        while *used + size > s.limit {
-            used = s.freed.wait(used).unwrap();
-        }
-        *used += size;
-    }
     let file_name = format!(
         "{}-{}",
         &crate::util::sha256_hex(url.as_bytes())[..16],
@@ -578,10 +601,7 @@ pub fn local_copy(path: &Path) -> Result<LocalCopy, StorageError> {
             .file_name()
             .map_or("clip".into(), |n| n.to_string_lossy())
     );
-    let copy = LocalCopy {
-        path: s.dir.join(file_name),
-        fetched: Some((s.clone(), size)),
-    };
+    let copy = reserve(&s, size, &file_name);
     loc.download(&name, &copy.path)?;
     Ok(copy)
 }
@@ -740,4 +760,52 @@ pub fn pull(url: &str, dir: &Path, opts: &StoreOptions) -> Result<CommitMarker, 
         }
     }
     Ok(marker)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A copy dropped while another is reserved but not yet written must
+    /// leave the scratch folder in place: the other download is about to
+    /// create its file there (a race seen with two decoding threads).
+    #[test]
+    fn scratch_folder_outlives_every_reserved_copy() {
+        let base =
+            std::env::temp_dir().join(format!("actuary-scratch-test-{}", std::process::id()));
+        let s = Arc::new(new_scratch(Some(&base), 1000));
+        let first = reserve(&s, 10, "a");
+        std::fs::create_dir_all(&s.dir).unwrap();
+        std::fs::write(first.path(), b"0123456789").unwrap();
+        let second = reserve(&s, 10, "b");
+        drop(first);
+        assert!(s.dir.is_dir(), "folder removed under a reserved copy");
+        std::fs::write(second.path(), b"0123456789").unwrap();
+        drop(second);
+        assert!(!s.dir.exists(), "the last copy leaves no folder behind");
+        let used = s.used.lock().unwrap();
+        assert_eq!((used.bytes, used.copies), (0, 0));
+        drop(used);
+        let _ = std::fs::remove_dir(&base);
+    }
+
+    /// A reservation over the free bytes waits until a copy is dropped.
+    #[test]
+    fn a_reservation_waits_for_room() {
+        let base =
+            std::env::temp_dir().join(format!("actuary-scratch-wait-{}", std::process::id()));
+        let s = Arc::new(new_scratch(Some(&base), 15));
+        let first = reserve(&s, 10, "a");
+        let s2 = s.clone();
+        let waiter = std::thread::spawn(move || {
+            let c = reserve(&s2, 10, "b");
+            c.fetched.as_ref().map(|f| f.1)
+        });
+        // The waiter cannot have reserved yet: 10 + 10 > 15 while `first` lives.
+        assert_eq!(s.used.lock().unwrap().bytes, 10);
+        drop(first);
+        assert_eq!(waiter.join().unwrap(), Some(10));
+        assert_eq!(s.used.lock().unwrap().bytes, 0);
+        let _ = std::fs::remove_dir_all(&base);
+    }
 }

@@ -153,7 +153,7 @@ fn clip_set_in_s3_decodes_like_the_same_clips_on_disk() {
         &std::fs::read_to_string(fx.root.join("run-remote/decode/manifest.json")).unwrap(),
     )
     .unwrap();
-    assert_eq!(ma["counts"], mb["counts"]);
+    assert_eq!(ma["counts"], mb["counts"], "{mb}");
     assert_eq!(mb["counts"]["decoded"], 4, "{mb}");
     // Same frames byte for byte; the records name the object URL, not the scratch copy.
     for (set, id) in [
