@@ -106,8 +106,11 @@ for d, dim in enumerate(names):
 print("\nre-dealt splits of the calib + holdout clips (normalised score)")
 pool = sorted(set(clips))
 n_calib = len(set(clips[calib]))
-combos = list(itertools.combinations(range(len(pool)), n_calib)) if math.comb(len(pool), n_calib) <= 20000 \
-    else [tuple(sorted(np.random.default_rng(7).choice(len(pool), n_calib, replace=False))) for _ in range(20000)]
+if math.comb(len(pool), n_calib) <= 20000:
+    combos = list(itertools.combinations(range(len(pool)), n_calib))
+else:
+    rng = np.random.default_rng(7)  # one generator: a fresh one per draw would repeat one draw
+    combos = [tuple(sorted(rng.choice(len(pool), n_calib, replace=False))) for _ in range(20000)]
 print(f"{len(pool)} clips, {n_calib} for calibration, {len(combos)} splits")
 print("| dim | mean coverage | 5th-95th percentile | min-max | share of splits in [0.86, 0.94] | this run |")
 print("| --- | --- | --- | --- | --- | --- |")

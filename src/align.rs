@@ -130,6 +130,10 @@ pub struct AlignOptions {
     pub copy_frames: bool,
     /// Frames sampled per set for colour statistics and the gap figure.
     pub gap_sample: u32,
+    /// Labelled sets kept out of the pooled labelled statistics (motion rate,
+    /// colour target, gap figure); from `[sets.NAME] held-out = true`.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub held_out_sets: Vec<String>,
 }
 
 impl Default for AlignOptions {
@@ -141,6 +145,7 @@ impl Default for AlignOptions {
             resample: DEFAULT_RESAMPLE,
             copy_frames: DEFAULT_COPY_FRAMES,
             gap_sample: DEFAULT_GAP_SAMPLE,
+            held_out_sets: Vec::new(),
         }
     }
 }

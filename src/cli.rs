@@ -170,6 +170,10 @@ pub enum Command {
         /// Number of human clips [default: the committed demo's].
         #[arg(long)]
         human_clips: Option<usize>,
+        /// Number of further robot clips in robot-check/, for a held-out set
+        /// (calibration and evaluation only) [default: the committed demo's].
+        #[arg(long)]
+        check_clips: Option<usize>,
         /// Width and height of the clips in pixels, even, 32 to 1024
         /// [default: the committed demo's, 96].
         #[arg(long)]

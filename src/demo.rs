@@ -56,6 +56,9 @@ pub const DEFAULT_SEED: u64 = 7;
 pub const DEFAULT_ROBOT_CLIPS: usize = 40;
 /// Human clips in the committed demo set.
 pub const DEFAULT_HUMAN_CLIPS: usize = 120;
+/// Number of held-out robot clips (`robot-check/`, for calibration and
+/// evaluation only), in the committed demo set.
+pub const DEFAULT_CHECK_CLIPS: usize = 48;
 /// Video frame rate of the demo clips.
 pub const DEFAULT_FPS: f64 = 10.0;
 /// Width and height of the demo clips in pixels.
@@ -78,6 +81,10 @@ pub struct DemoOptions {
     pub robot_clips: usize,
     /// Number of human clips (truth written to `human-truth/`).
     pub human_clips: usize,
+    /// Number of further robot clips in `robot-check/` (with action logs), for
+    /// a held-out set; drawn like the robot clips from their own streams, so
+    /// adding them changes no other clip.
+    pub check_clips: usize,
     /// Video frame rate.
     pub fps: f64,
     /// Frame width and height, pixels (even).
@@ -100,6 +107,7 @@ impl Default for DemoOptions {
             seed: DEFAULT_SEED,
             robot_clips: DEFAULT_ROBOT_CLIPS,
             human_clips: DEFAULT_HUMAN_CLIPS,
+            check_clips: DEFAULT_CHECK_CLIPS,
             fps: DEFAULT_FPS,
             size: DEFAULT_SIZE,
             log_rate: DEFAULT_LOG_RATE,
@@ -116,6 +124,7 @@ impl Default for DemoOptions {
 pub struct DemoSummary {
     pub robot_clips: usize,
     pub human_clips: usize,
+    pub check_clips: usize,
     /// Total size of all files written, bytes.
     pub bytes: u64,
 }
@@ -206,39 +215,46 @@ impl DemoOptions {
 #[derive(Debug, Clone)]
 struct ClipPlan {
     kind: Kind,
+    /// Random stream family: 1 robot, 2 human, 3 held-out robot.
+    family: u64,
     index: usize,
     id: String,
+    /// Folder of the video (and of the robot log).
+    folder: &'static str,
 }
 
 fn plans(opts: &DemoOptions) -> Vec<ClipPlan> {
     let mut out = Vec::new();
-    for (kind, count, prefix) in [
-        (Kind::Robot, opts.robot_clips, "robot"),
-        (Kind::Human, opts.human_clips, "human"),
+    for (kind, family, count, prefix, folder) in [
+        (Kind::Robot, 1, opts.robot_clips, "robot", "robot"),
+        (Kind::Human, 2, opts.human_clips, "human", "human"),
+        (Kind::Robot, 3, opts.check_clips, "check", CHECK_FOLDER),
     ] {
         let width = count.saturating_sub(1).to_string().len().max(2);
         for index in 0..count {
             out.push(ClipPlan {
                 kind,
+                family,
                 index,
                 id: format!("{prefix}-{index:0width$}"),
+                folder,
             });
         }
     }
     out
 }
 
+/// Folder of the held-out robot clips.
+const CHECK_FOLDER: &str = "robot-check";
+
 struct Built {
     sim: Simulation,
     renderer: Renderer,
 }
 
-/// Simulates a clip; its random stream depends only on the seed, kind and index.
+/// Simulates a clip; its random stream depends only on the seed, family and index.
 fn build(opts: &DemoOptions, plan: &ClipPlan) -> Built {
-    let stream = match plan.kind {
-        Kind::Robot => 1u64 << 32,
-        Kind::Human => 2u64 << 32,
-    } | plan.index as u64;
+    let stream = (plan.family << 32) | plan.index as u64;
     let mut rng = Rng::derive(opts.seed, stream);
     let frames = rng.int(opts.min_frames as u64, opts.max_frames as u64) as usize;
     let body = Embodiment::of(plan.kind);
@@ -253,8 +269,12 @@ fn build(opts: &DemoOptions, plan: &ClipPlan) -> Built {
 /// that the options no longer produce.
 pub fn generate(dir: &Path, opts: &DemoOptions) -> Result<DemoSummary, DemoError> {
     opts.validate()?;
-    let folders = ["robot", "human", "human-truth"].map(|s| dir.join(s));
-    for f in &folders {
+    let folders = ["robot", "human", "human-truth", CHECK_FOLDER].map(|s| dir.join(s));
+    // robot-check/ only when there are held-out clips to write.
+    for f in folders
+        .iter()
+        .filter(|f| opts.check_clips > 0 || !f.ends_with(CHECK_FOLDER))
+    {
         fs::create_dir_all(f).map_err(|source| DemoError::Folder {
             path: f.clone(),
             source,
@@ -280,6 +300,7 @@ pub fn generate(dir: &Path, opts: &DemoOptions) -> Result<DemoSummary, DemoError
     Ok(DemoSummary {
         robot_clips: opts.robot_clips,
         human_clips: opts.human_clips,
+        check_clips: opts.check_clips,
         bytes: sizes.iter().sum::<u64>() + text.len() as u64,
     })
 }
@@ -308,8 +329,9 @@ fn write_clip(dir: &Path, opts: &DemoOptions, plan: &ClipPlan) -> Result<u64, De
     let b = build(opts, plan);
     let (video, table) = match plan.kind {
         Kind::Robot => (
-            dir.join("robot").join(format!("{}.mp4", plan.id)),
-            dir.join("robot").join(format!("{}.actions.csv", plan.id)),
+            dir.join(plan.folder).join(format!("{}.mp4", plan.id)),
+            dir.join(plan.folder)
+                .join(format!("{}.actions.csv", plan.id)),
         ),
         Kind::Human => (
             dir.join("human").join(format!("{}.mp4", plan.id)),
@@ -393,10 +415,13 @@ fn cm(micro: i64) -> String {
     format!("{sign}{}.{:04}", a / m, a % m)
 }
 
-/// Removes `robot-N` / `human-N` files that this run did not produce.
-fn remove_stale(folders: &[PathBuf; 3], plans: &[ClipPlan]) -> Result<(), DemoError> {
+/// Removes `robot-N` / `human-N` / `check-N` files that this run did not produce.
+fn remove_stale(folders: &[PathBuf; 4], plans: &[ClipPlan]) -> Result<(), DemoError> {
     let keep: std::collections::HashSet<&str> = plans.iter().map(|p| p.id.as_str()).collect();
     for folder in folders {
+        if !folder.exists() {
+            continue;
+        }
         let entries = fs::read_dir(folder).map_err(|source| DemoError::Folder {
             path: folder.clone(),
             source,
@@ -408,7 +433,7 @@ fn remove_stale(folders: &[PathBuf; 3], plans: &[ClipPlan]) -> Result<(), DemoEr
                 .strip_suffix(".actions.csv")
                 .or_else(|| name.strip_suffix(".mp4"));
             let Some(stem) = stem else { continue };
-            let ours = ["robot-", "human-"].iter().any(|p| {
+            let ours = ["robot-", "human-", "check-"].iter().any(|p| {
                 stem.strip_prefix(p)
                     .is_some_and(|n| !n.is_empty() && n.bytes().all(|c| c.is_ascii_digit()))
             });
@@ -452,6 +477,8 @@ fn readme_text(opts: &DemoOptions) -> String {
          - `robot/`: {rc} clips of a robot gripper, {size}x{size} px, {fps} fps, H.264\n\
          \x20 (BT.601, limited range), each with `NAME.actions.csv`: a {log} Hz log\n\
          \x20 `t,dx,dy,grip` (t from 0 on an exact grid; a row holds until the next).\n\
+         - `robot-check/`: {cc} more robot clips made the same way, for a held-out set\n\
+         \x20 (`held-out = true` in the demo spec: calibration and evaluation only).\n\
          - `human/`: {hc} clips of a human hand doing the same kind of pushing, no sidecars.\n\
          - `human-truth/`: the human clips' true actions, for evaluation only: one row per\n\
          \x20 frame, `t = k / {fps}`, row k = the action from frame k to frame k+1, dx and dy\n\
@@ -467,6 +494,7 @@ fn readme_text(opts: &DemoOptions) -> String {
         seed = opts.seed,
         rc = opts.robot_clips,
         hc = opts.human_clips,
+        cc = opts.check_clips,
         size = opts.size,
         fps = opts.fps,
         log = opts.log_rate,
@@ -496,13 +524,18 @@ mod tests {
         let opts = DemoOptions {
             robot_clips: 3,
             human_clips: 120,
+            check_clips: 2,
             ..DemoOptions::default()
         };
         let p = plans(&opts);
         assert_eq!(p[0].id, "robot-00");
         assert_eq!(p[3].id, "human-000");
+        assert_eq!(
+            (p[123].id.as_str(), p[123].folder),
+            ("check-00", "robot-check")
+        );
         let ids: std::collections::HashSet<_> = p.iter().map(|p| &p.id).collect();
-        assert_eq!(ids.len(), 123);
+        assert_eq!(ids.len(), 125);
     }
 
     #[test]

@@ -108,6 +108,10 @@ pub struct FitOptions {
     /// not only each level's global maxima.
     #[serde(default)]
     pub posterior_positions: bool,
+    /// Labelled sets dealt into calib and holdout only, never trained on;
+    /// from `[sets.NAME] held-out = true`.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub held_out_sets: Vec<String>,
 }
 
 fn default_head_loss() -> HeadLoss {
@@ -136,6 +140,7 @@ impl Default for FitOptions {
             compare: true,
             head_loss: HeadLoss::Faithful,
             posterior_positions: false,
+            held_out_sets: Vec::new(),
         }
     }
 }

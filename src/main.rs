@@ -234,6 +234,7 @@ fn dispatch(command: Command) -> Result<i32> {
             seed,
             robot_clips,
             human_clips,
+            check_clips,
             size,
         } => {
             let mut opts = actuary::demo::DemoOptions::default();
@@ -246,13 +247,17 @@ fn dispatch(command: Command) -> Result<i32> {
             if let Some(n) = human_clips {
                 opts.human_clips = n;
             }
+            if let Some(n) = check_clips {
+                opts.check_clips = n;
+            }
             if let Some(px) = size {
                 opts.size = px;
             }
             let summary = actuary::demo::generate(&dir, &opts)?;
             println!(
-                "wrote {} robot and {} human clip(s) to {} ({} bytes)",
+                "wrote {} robot, {} held-out robot and {} human clip(s) to {} ({} bytes)",
                 summary.robot_clips,
+                summary.check_clips,
                 summary.human_clips,
                 dir.display(),
                 summary.bytes

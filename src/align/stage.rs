@@ -254,7 +254,9 @@ pub fn align_run(
             .collect();
         median(&mut v)
     };
-    let lab_rate = pooled(&|c| c.rec.labelled);
+    // Held-out labelled sets are evaluation data: no pooled statistic sees them.
+    let fitted_labelled = |c: &Clip| c.rec.labelled && !opts.held_out_sets.contains(&c.rec.set);
+    let lab_rate = pooled(&fitted_labelled);
     let unl_rate = pooled(&|c| !c.rec.labelled);
     let set_rate: Vec<Option<f64>> = set_names
         .iter()
@@ -309,7 +311,7 @@ pub fn align_run(
             .collect()
     };
     let take = opts.gap_sample as usize;
-    let labelled_picks = spread(&lengths_where(&|c| c.rec.labelled), take);
+    let labelled_picks = spread(&lengths_where(&fitted_labelled), take);
     let target = lab_stats(&labelled_picks);
     let set_picks: Vec<Vec<(usize, usize)>> = set_names
         .iter()
@@ -402,7 +404,7 @@ pub fn align_run(
         })
     };
     let lab_f_before = features_before(&labelled_picks);
-    let lab_f_after = features_after(&aligned_picks(&|c| c.rec.labelled));
+    let lab_f_after = features_after(&aligned_picks(&fitted_labelled));
     let unl_f_before = features_before(&spread(&lengths_where(&|c| !c.rec.labelled), take));
     let unl_f_after = features_after(&aligned_picks(&|c| !c.rec.labelled));
     let gap_before = gap(&lab_f_before, &unl_f_before);

@@ -256,6 +256,7 @@ impl Dataset {
         calib: f64,
         holdout: f64,
         split_by: super::SplitBy,
+        held_out_sets: &[String],
     ) -> Result<Self, FitError> {
         let run = AlignedRun::open_or_passthrough(run_dir, actions_opts)?;
         let views = run.clips();
@@ -298,17 +299,45 @@ impl Dataset {
                 transitions: v.len().saturating_sub(1),
             });
         }
-        // Splits: labelled clips in (set, id) order, dealt by `split_by`.
-        let labelled: Vec<usize> = (0..clips.len()).filter(|&i| clips[i].labelled).collect();
-        let counts = split_counts(labelled.len(), calib, holdout)?;
-        let rows: Vec<&[Vec<f32>]> = labelled
+        // Splits: labelled clips in (set, id) order, dealt by `split_by`;
+        // held-out sets' clips separately, into calib and holdout only, so
+        // that adding them leaves the other clips' splits as they were.
+        let held_flags: Vec<bool> = clips
             .iter()
-            .map(|&i| views[clips[i].index].actions().unwrap_or(&[]))
+            .map(|c| held_out_sets.contains(&c.set))
             .collect();
-        let scores = super::splits::motion_scores(&rows, &dims);
-        let dealt = super::splits::assign(&scores, counts, split_by, seed);
+        let held = |i: usize| held_flags[i];
+        let view_of: Vec<usize> = clips.iter().map(|c| c.index).collect();
+        let labelled: Vec<usize> = (0..clips.len())
+            .filter(|&i| clips[i].labelled && !held(i))
+            .collect();
+        let counts = split_counts(labelled.len(), calib, holdout)?;
+        let scores_of = |members: &[usize]| {
+            let rows: Vec<&[Vec<f32>]> = members
+                .iter()
+                .map(|&i| views[view_of[i]].actions().unwrap_or(&[]))
+                .collect();
+            super::splits::motion_scores(&rows, &dims)
+        };
+        let dealt = super::splits::assign(&scores_of(&labelled), counts, split_by, seed);
         for (&i, split) in labelled.iter().zip(dealt) {
             clips[i].split = split;
+        }
+        let reserved: Vec<usize> = (0..clips.len())
+            .filter(|&i| clips[i].labelled && held(i))
+            .collect();
+        if !reserved.is_empty() {
+            let counts = super::splits::held_out_counts(reserved.len(), calib, holdout);
+            let dealt = super::splits::assign_stream(
+                &scores_of(&reserved),
+                counts,
+                split_by,
+                seed,
+                "fit.splits.held-out",
+            );
+            for (&i, split) in reserved.iter().zip(dealt) {
+                clips[i].split = split;
+            }
         }
         let train_l: Vec<usize> = (0..clips.len())
             .filter(|&i| clips[i].labelled && clips[i].split == Split::Train)

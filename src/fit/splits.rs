@@ -47,8 +47,31 @@ pub fn motion_scores(clips: &[&[Vec<f32>]], dims: &[String]) -> Vec<f64> {
 /// The split of each of `scores.len()` labelled clips (given in a fixed
 /// order), `counts` of each, dealt by `by` from `seed`.
 pub fn assign(scores: &[f64], counts: SplitCounts, by: SplitBy, seed: u64) -> Vec<Split> {
+    assign_stream(scores, counts, by, seed, "fit.splits")
+}
+
+/// How `n` clips of held-out sets split: calib and holdout only, in the
+/// ratio of the two fractions (the calib share rounded to nearest).
+pub fn held_out_counts(n: usize, calib: f64, holdout: f64) -> SplitCounts {
+    let c = ((n as f64 * calib / (calib + holdout)).round() as usize).min(n);
+    SplitCounts {
+        train: 0,
+        calib: c,
+        holdout: n - c,
+    }
+}
+
+/// [`assign`] from the random stream named `stream` (one per group of clips
+/// dealt, so that one group's dealing does not move another's).
+pub fn assign_stream(
+    scores: &[f64],
+    counts: SplitCounts,
+    by: SplitBy,
+    seed: u64,
+    stream: &str,
+) -> Vec<Split> {
     let n = scores.len();
-    let mut rng = Rng::for_name(seed, "fit.splits");
+    let mut rng = Rng::for_name(seed, stream);
     let mut out = vec![Split::Train; n];
     match by {
         SplitBy::Random => {
@@ -158,6 +181,35 @@ mod tests {
             })
             .count();
         assert!(misses > 0 && misses < 40, "{misses}");
+    }
+
+    #[test]
+    fn held_out_clips_go_to_calib_and_holdout_in_the_fractions_ratio() {
+        assert_eq!(tally_counts(held_out_counts(40, 0.2, 0.2)), (0, 20, 20));
+        assert_eq!(tally_counts(held_out_counts(10, 0.1, 0.3)), (0, 3, 7));
+        assert_eq!(tally_counts(held_out_counts(1, 0.2, 0.2)), (0, 1, 0));
+        let scores: Vec<f64> = (0..40).map(|i| ((i * 7) % 40) as f64).collect();
+        for by in [SplitBy::Motion, SplitBy::Random] {
+            let a = assign_stream(&scores, held_out_counts(40, 0.2, 0.2), by, 7, "other");
+            assert_eq!(tally(&a), (0, 20, 20), "{by:?}");
+        }
+        // Motion dealing alternates along the ranks: each pair of neighbouring
+        // ranks holds one calib and one holdout clip.
+        let sorted: Vec<f64> = (0..40).map(f64::from).collect();
+        let a = assign_stream(
+            &sorted,
+            held_out_counts(40, 0.2, 0.2),
+            SplitBy::Motion,
+            7,
+            "x",
+        );
+        for pair in a.chunks(2) {
+            assert_ne!(pair[0], pair[1], "{a:?}");
+        }
+    }
+
+    fn tally_counts(c: SplitCounts) -> (usize, usize, usize) {
+        (c.train, c.calib, c.holdout)
     }
 
     #[test]

@@ -161,6 +161,7 @@ fn fit_in_pool(inputs: &FitInputs<'_>) -> Result<FitSummary, FitError> {
         opts.calib_fraction,
         opts.holdout_fraction,
         opts.split_by,
+        &opts.held_out_sets,
     )?;
     let std = ds.standardisation.clone();
     let cfg = opts.network(ds.width, ds.height, ds.action_dims());

@@ -40,6 +40,9 @@ pub struct SetSpec {
     pub labelled: bool,
     /// Evaluation-only folder of true actions; never a training input.
     pub eval_truth: Option<PathBuf>,
+    /// A labelled set kept out of everything fitted: align's pooled statistics
+    /// and the model never see it; its clips go to calib and holdout only.
+    pub held_out: bool,
 }
 
 /// The clock offset between a clip and its action log.

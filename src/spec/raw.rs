@@ -56,6 +56,10 @@ pub struct RawSet {
     /// Evaluation-only folder of true actions (`NAME.actions.csv`, one row per decoded frame).
     #[serde(default)]
     pub eval_truth: Option<Spanned<String>>,
+    /// Labelled clips kept out of everything fitted (align's pooled
+    /// statistics, the model); dealt into calib and holdout only.
+    #[serde(default)]
+    pub held_out: Option<Spanned<bool>>,
 }
 
 /// `[decode]`.

@@ -52,6 +52,17 @@ pub(crate) fn resolve(raw: RawSpec, path: &Path, base: &Path, p: &mut Problems<'
     };
     let sets_span = sets.span();
     let sets = resolve_sets(sets.into_inner(), sets_span, base, p);
+    // Align and fit keep held-out sets out of what they fit; the names are
+    // part of their settings (and so of their keys).
+    let held_out: Vec<String> = sets
+        .iter()
+        .filter(|s| s.held_out)
+        .map(|s| s.name.clone())
+        .collect();
+    let mut align = super::align::resolve(&align, p);
+    align.held_out_sets = held_out.clone();
+    let mut fit = super::fit::resolve(&fit, p);
+    fit.held_out_sets = held_out;
     Spec {
         path: path.to_path_buf(),
         out: out_path,
@@ -59,8 +70,8 @@ pub(crate) fn resolve(raw: RawSpec, path: &Path, base: &Path, p: &mut Problems<'
         sets,
         decode: resolve_decode(decode, p),
         actions: resolve_actions(actions, p),
-        align: super::align::resolve(&align, p),
-        fit: super::fit::resolve(&fit, p),
+        align,
+        fit,
         label: super::label::resolve(&label, p),
         shard: super::shard::resolve(&shard, p),
         cluster: super::cluster::resolve(&cluster, p),
@@ -93,6 +104,7 @@ fn resolve_sets(
             dir,
             labelled,
             eval_truth,
+            held_out,
         } = set;
         let key = format!("sets.{name}");
         if !name
@@ -130,15 +142,34 @@ fn resolve_sets(
             }
             tp
         });
+        let held_out = match held_out {
+            Some(h) if *h.get_ref() && !labelled => {
+                p.at(
+                    &format!("{key}.held-out"),
+                    h.span(),
+                    "only a labelled set can be held out (it is dealt into calib and holdout)",
+                );
+                false
+            }
+            Some(h) => *h.get_ref(),
+            None => false,
+        };
         out.push(SetSpec {
             name,
             dir: dir_path,
             labelled,
             eval_truth,
+            held_out,
         });
     }
     if !out.iter().any(|s| s.labelled) && !out.is_empty() {
         p.at("sets", span, "at least one set must have `labelled = true`");
+    } else if !out.is_empty() && !out.iter().any(|s| s.labelled && !s.held_out) {
+        p.at(
+            "sets",
+            span,
+            "at least one labelled set must not be `held-out` (the model trains on it)",
+        );
     }
     out
 }

@@ -420,6 +420,8 @@ fn slurm_run_of_every_stage_gives_byte_identical_shards() {
         "6",
         "--human-clips",
         "4",
+        "--check-clips",
+        "0",
     ]));
     let resources = "[cluster]\nparts = 4\n[cluster.jobs.default]\ncpus-per-task = 1\nmem = \"500M\"\ntime = \"10:00\"\n";
     let single = full_spec(root, "single.toml", "run-single", "");

@@ -15,6 +15,7 @@ fn tiny() -> DemoOptions {
         seed: 11,
         robot_clips: 2,
         human_clips: 2,
+        check_clips: 0,
         min_frames: 18,
         max_frames: 26,
         ..DemoOptions::default()
@@ -70,8 +71,11 @@ fn read_csv(path: &Path) -> (String, Vec<Vec<f64>>) {
 
 fn files(dir: &Path) -> BTreeMap<PathBuf, Vec<u8>> {
     let mut out = BTreeMap::new();
-    for sub in ["robot", "human", "human-truth"] {
-        for e in std::fs::read_dir(dir.join(sub)).unwrap() {
+    for sub in ["robot", "human", "human-truth", "robot-check"] {
+        let Ok(entries) = std::fs::read_dir(dir.join(sub)) else {
+            continue;
+        };
+        for e in entries {
             let p = e.unwrap().path();
             out.insert(
                 p.strip_prefix(dir).unwrap().to_path_buf(),
@@ -212,6 +216,29 @@ fn demo_clips_are_deterministic() {
             name.display()
         );
     }
+    // Held-out robot clips come from their own random streams: adding one
+    // changes no other file, and it lands in robot-check/ with its log.
+    let d = tempfile::tempdir().unwrap();
+    demo::generate(
+        d.path(),
+        &DemoOptions {
+            check_clips: 1,
+            ..opts.clone()
+        },
+    )
+    .unwrap();
+    let fd = files(d.path());
+    assert_eq!(fd.len(), fa.len() + 2);
+    for (name, bytes) in &fa {
+        assert!(bytes == &fd[name], "{} changed", name.display());
+    }
+    let check_log = Path::new("robot-check").join("check-00.actions.csv");
+    assert!(fd.contains_key(&Path::new("robot-check").join("check-00.mp4")));
+    assert!(fd[&check_log].starts_with(b"t,dx,dy,grip\n"));
+    assert_ne!(
+        fd[&check_log],
+        fa[&Path::new("robot").join("robot-00.actions.csv")]
+    );
     // Another seed gives other clips.
     let c = tempfile::tempdir().unwrap();
     demo::generate(c.path(), &DemoOptions { seed: 12, ..opts }).unwrap();

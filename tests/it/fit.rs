@@ -22,6 +22,8 @@ fn demo(dir: &Path) -> PathBuf {
         "4",
         "--human-clips",
         "2",
+        "--check-clips",
+        "0",
     ]);
     assert_eq!(code, 0, "{err}");
     clips
@@ -233,6 +235,8 @@ fn per_clip_sums_give_scikit_learn_r2_on_a_subset_of_clips() {
         "5",
         "--human-clips",
         "3",
+        "--check-clips",
+        "0",
     ]);
     assert_eq!(code, 0, "{err}");
     let fit = TINY_FIT.replace("steps = 120", "steps = 20") + "compare = false\n";
@@ -290,6 +294,98 @@ fn per_clip_sums_give_scikit_learn_r2_on_a_subset_of_clips() {
         assert!(
             (a - b).abs() < 1e-4,
             "dimension {d}: ours {a}, scikit-learn {b}"
+        );
+    }
+}
+
+/// A held-out labelled set (`held-out = true`) adds calib and holdout clips
+/// and nothing else: the same clips train, align's pooled statistics do not
+/// move, and the trained weights are byte-identical to a run without it.
+#[test]
+fn a_held_out_set_only_adds_calib_and_holdout_clips() {
+    let dir = tempfile::tempdir().unwrap();
+    let clips = dir.path().join("clips");
+    let (code, _, err) = actuary(&[
+        "demo-clips",
+        s(&clips),
+        "--robot-clips",
+        "4",
+        "--human-clips",
+        "2",
+        "--check-clips",
+        "4",
+    ]);
+    assert_eq!(code, 0, "{err}");
+    let fit = TINY_FIT.replace("steps = 120", "steps = 20") + "compare = false\n";
+    let plain = spec(dir.path(), "plain.toml", &clips, "run-plain", &fit);
+    let text = std::fs::read_to_string(&plain)
+        .unwrap()
+        .replace("run-plain", "run-held")
+        + &format!(
+            "\n[sets.robot-check]\ndir = \"{}\"\nlabelled = true\nheld-out = true\n",
+            s(&clips.join("robot-check"))
+        );
+    let held = dir.path().join("held.toml");
+    std::fs::write(&held, text).unwrap();
+    for path in [&plain, &held] {
+        let (code, err) = run_fit(path);
+        assert_eq!(code, 0, "{err}");
+    }
+    let read = |run: &str, file: &str| -> serde_json::Value {
+        let text = std::fs::read_to_string(dir.path().join(run).join(file)).unwrap();
+        serde_json::from_str(&text).unwrap()
+    };
+    let splits = |run: &str| -> Vec<(String, String, String)> {
+        read(run, "fit/model.json")["splits"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| {
+                let f = |k: &str| c[k].as_str().unwrap().to_string();
+                (f("set"), f("id"), f("split"))
+            })
+            .collect()
+    };
+    let (a, b) = (splits("run-plain"), splits("run-held"));
+    let checks: Vec<&(String, String, String)> =
+        b.iter().filter(|c| c.0 == "robot-check").collect();
+    assert_eq!(checks.len(), 4, "{b:?}");
+    let count = |s: &str| checks.iter().filter(|c| c.2 == s).count();
+    assert_eq!((count("calib"), count("holdout")), (2, 2), "{b:?}");
+    let others: Vec<_> = b.iter().filter(|c| c.0 != "robot-check").cloned().collect();
+    assert_eq!(a, others, "the other clips' splits moved");
+    // Align: every clip of the plain run aligned exactly as before.
+    let clip_map = |run: &str| -> std::collections::BTreeMap<String, serde_json::Value> {
+        read(run, "align/alignment.json")["clips"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| (format!("{}/{}", c["set"], c["id"]), c.clone()))
+            .collect()
+    };
+    let (ca, cb) = (clip_map("run-plain"), clip_map("run-held"));
+    for (k, v) in &ca {
+        assert_eq!(Some(v), cb.get(k), "{k}");
+    }
+    // The model: byte-identical weights (the files' metadata differ: they
+    // carry the stage key, which names the held-out set).
+    let weights =
+        |run: &str| std::fs::read(dir.path().join(run).join("fit/semi.safetensors")).unwrap();
+    let (wa, wb) = (weights("run-plain"), weights("run-held"));
+    let (ta, tb) = (
+        safetensors::SafeTensors::deserialize(&wa).unwrap(),
+        safetensors::SafeTensors::deserialize(&wb).unwrap(),
+    );
+    let mut names = ta.names();
+    names.sort();
+    let mut names_b = tb.names();
+    names_b.sort();
+    assert_eq!(names, names_b);
+    assert!(!names.is_empty());
+    for name in names {
+        assert!(
+            ta.tensor(name).unwrap().data() == tb.tensor(name).unwrap().data(),
+            "the held-out set changed the trained weights of {name}"
         );
     }
 }

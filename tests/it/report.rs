@@ -661,6 +661,7 @@ fn report_of_a_real_tiny_run_opens_in_headless_chromium() {
     let opts = actuary::demo::DemoOptions {
         robot_clips: 5,
         human_clips: 3,
+        check_clips: 0,
         min_frames: 20,
         max_frames: 30,
         ..Default::default()

@@ -153,3 +153,35 @@ fn unreadable_spec_is_a_read_error() {
     assert!(matches!(err, SpecError::Read { .. }));
     assert!(err.to_string().contains("/nonexistent/spec.toml"));
 }
+
+#[test]
+fn held_out_needs_a_labelled_set_and_a_trainable_one_left() {
+    // Only labelled clips can be dealt into calib and holdout.
+    let e = error_of(&format!(
+        "{MINIMAL}[sets.human]\ndir = \"clips\"\nlabelled = false\nheld-out = true\n"
+    ));
+    assert!(
+        e.contains("sets.human.held-out") && e.contains("line 8"),
+        "{e}"
+    );
+    // Every labelled set held out leaves the model nothing to train on.
+    let e = error_of(
+        "out = \"run\"\n[sets.robot]\ndir = \"clips\"\nlabelled = true\nheld-out = true\n",
+    );
+    assert!(e.contains("must not be `held-out`"), "{e}");
+    // A held-out labelled set beside a trainable one is accepted and reaches
+    // align and fit, which keep it out of what they fit.
+    let tmp = tempfile::tempdir().unwrap();
+    let path = write_spec(
+        tmp.path(),
+        &format!(
+            "{MINIMAL}[sets.robot-check]\ndir = \"clips\"\nlabelled = true\nheld-out = true\n"
+        ),
+    );
+    let spec = Spec::load(&path).unwrap();
+    let check = spec.set("robot-check").unwrap();
+    assert!(check.held_out && check.labelled);
+    assert!(!spec.set("robot").unwrap().held_out);
+    assert_eq!(spec.align.held_out_sets, ["robot-check"]);
+    assert_eq!(spec.fit.held_out_sets, ["robot-check"]);
+}
