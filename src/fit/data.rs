@@ -358,6 +358,13 @@ impl Dataset {
                 .cloned()
         });
         let standardisation = Standardisation::fit(&dims, rows);
+        // Clips per split, held-out sets' clips included.
+        let tally = |s: Split| clips.iter().filter(|c| c.labelled && c.split == s).count();
+        let counts = SplitCounts {
+            train: tally(Split::Train),
+            calib: tally(Split::Calib),
+            holdout: tally(Split::Holdout),
+        };
         Ok(Self {
             run,
             clips,

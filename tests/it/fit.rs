@@ -352,6 +352,21 @@ fn a_held_out_set_only_adds_calib_and_holdout_clips() {
     assert_eq!(checks.len(), 4, "{b:?}");
     let count = |s: &str| checks.iter().filter(|c| c.2 == s).count();
     assert_eq!((count("calib"), count("holdout")), (2, 2), "{b:?}");
+    // The fit manifest counts them among calib and holdout.
+    let counts = &read("run-held", "fit/manifest.json")["counts"];
+    assert_eq!(
+        (
+            &counts["train_clips"],
+            &counts["calib_clips"],
+            &counts["holdout_clips"]
+        ),
+        (
+            &serde_json::json!(2),
+            &serde_json::json!(3),
+            &serde_json::json!(3)
+        ),
+        "{counts}"
+    );
     let others: Vec<_> = b.iter().filter(|c| c.0 != "robot-check").cloned().collect();
     assert_eq!(a, others, "the other clips' splits moved");
     // Align: every clip of the plain run aligned exactly as before.
