@@ -115,17 +115,20 @@ pub fn check_inputs(spec: &Spec, threads: usize) -> CheckReport {
             }
         }
     }
-    // The fit stage splits labelled clips by clip into train, calib and holdout.
-    let labelled = clips.iter().filter(|c| c.labelled).count();
-    if labelled > 0 {
-        if let Err(e) =
+    // The fit stage splits labelled clips by clip into train, calib and
+    // holdout (held-out sets' clips apart: they never train).
+    let labelled = clips
+        .iter()
+        .filter(|c| c.labelled && !spec.fit.held_out_sets.contains(&c.set))
+        .count();
+    if labelled > 0
+        && let Err(e) =
             crate::fit::split_counts(labelled, spec.fit.calib_fraction, spec.fit.holdout_fraction)
-        {
-            report.problems.push(InputProblem {
-                path: spec.path.clone(),
-                message: e.to_string(),
-            });
-        }
+    {
+        report.problems.push(InputProblem {
+            path: spec.path.clone(),
+            message: e.to_string(),
+        });
     }
     let dims: Vec<&Vec<String>> = headers.values().map(|(d, _)| d).collect();
     if dims.windows(2).any(|w| w[0] != w[1]) {
