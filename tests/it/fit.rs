@@ -14,16 +14,21 @@ const TINY_FIT: &str = "[fit]\nlatent = 4\nwidths = [8, 8, 8]\nhidden = 16\nhead
 
 /// Generates a small demo (4 robot, 2 human clips) into `dir/clips`.
 fn demo(dir: &Path) -> PathBuf {
+    demo_with(dir, 4, 2, 0)
+}
+
+/// Generates `robot`, `human` and `check` (held-out robot) demo clips into `dir/clips`.
+fn demo_with(dir: &Path, robot: u32, human: u32, check: u32) -> PathBuf {
     let clips = dir.join("clips");
     let (code, _, err) = actuary(&[
         "demo-clips",
         s(&clips),
         "--robot-clips",
-        "4",
+        &robot.to_string(),
         "--human-clips",
-        "2",
+        &human.to_string(),
         "--check-clips",
-        "0",
+        &check.to_string(),
     ]);
     assert_eq!(code, 0, "{err}");
     clips
@@ -227,18 +232,7 @@ fn per_clip_sums_give_scikit_learn_r2_on_a_subset_of_clips() {
         return;
     }
     let dir = tempfile::tempdir().unwrap();
-    let clips = dir.path().join("clips");
-    let (code, _, err) = actuary(&[
-        "demo-clips",
-        s(&clips),
-        "--robot-clips",
-        "5",
-        "--human-clips",
-        "3",
-        "--check-clips",
-        "0",
-    ]);
-    assert_eq!(code, 0, "{err}");
+    let clips = demo_with(dir.path(), 5, 3, 0);
     let fit = TINY_FIT.replace("steps = 120", "steps = 20") + "compare = false\n";
     let path = spec(dir.path(), "sub.toml", &clips, "run", &fit);
     let (code, _, err) = actuary(&["run", s(&path), "-j", "1"]);
@@ -304,18 +298,7 @@ fn per_clip_sums_give_scikit_learn_r2_on_a_subset_of_clips() {
 #[test]
 fn a_held_out_set_only_adds_calib_and_holdout_clips() {
     let dir = tempfile::tempdir().unwrap();
-    let clips = dir.path().join("clips");
-    let (code, _, err) = actuary(&[
-        "demo-clips",
-        s(&clips),
-        "--robot-clips",
-        "4",
-        "--human-clips",
-        "2",
-        "--check-clips",
-        "4",
-    ]);
-    assert_eq!(code, 0, "{err}");
+    let clips = demo_with(dir.path(), 4, 2, 4);
     let fit = TINY_FIT.replace("steps = 120", "steps = 20") + "compare = false\n";
     let plain = spec(dir.path(), "plain.toml", &clips, "run-plain", &fit);
     let text = std::fs::read_to_string(&plain)
