@@ -219,7 +219,7 @@ struct ClipPlan {
     family: u64,
     index: usize,
     id: String,
-    /// Folder of the video (and of the robot log).
+    /// Folder of the video (and of the robot's log; human truth goes to `human-truth/`).
     folder: &'static str,
 }
 
@@ -334,7 +334,7 @@ fn write_clip(dir: &Path, opts: &DemoOptions, plan: &ClipPlan) -> Result<u64, De
                 .join(format!("{}.actions.csv", plan.id)),
         ),
         Kind::Human => (
-            dir.join("human").join(format!("{}.mp4", plan.id)),
+            dir.join(plan.folder).join(format!("{}.mp4", plan.id)),
             dir.join("human-truth")
                 .join(format!("{}.actions.csv", plan.id)),
         ),

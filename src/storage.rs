@@ -766,14 +766,19 @@ pub fn pull(url: &str, dir: &Path, opts: &StoreOptions) -> Result<CommitMarker, 
 mod tests {
     use super::*;
 
+    /// A scratch space of `limit` bytes under a fresh folder named `name`.
+    fn test_scratch(name: &str, limit: u64) -> (PathBuf, Arc<Scratch>) {
+        let base = std::env::temp_dir().join(format!("{name}-{}", std::process::id()));
+        let s = Arc::new(new_scratch(Some(&base), limit));
+        (base, s)
+    }
+
     /// A copy dropped while another is reserved but not yet written must
     /// leave the scratch folder in place: the other download is about to
     /// create its file there (a race seen with two decoding threads).
     #[test]
     fn scratch_folder_outlives_every_reserved_copy() {
-        let base =
-            std::env::temp_dir().join(format!("actuary-scratch-test-{}", std::process::id()));
-        let s = Arc::new(new_scratch(Some(&base), 1000));
+        let (base, s) = test_scratch("actuary-scratch-test", 1000);
         let first = reserve(&s, 10, "a");
         std::fs::create_dir_all(&s.dir).unwrap();
         std::fs::write(first.path(), b"0123456789").unwrap();
@@ -792,9 +797,7 @@ mod tests {
     /// A reservation over the free bytes waits until a copy is dropped.
     #[test]
     fn a_reservation_waits_for_room() {
-        let base =
-            std::env::temp_dir().join(format!("actuary-scratch-wait-{}", std::process::id()));
-        let s = Arc::new(new_scratch(Some(&base), 15));
+        let (base, s) = test_scratch("actuary-scratch-wait", 15);
         let first = reserve(&s, 10, "a");
         let s2 = s.clone();
         let waiter = std::thread::spawn(move || {

@@ -302,40 +302,33 @@ impl Dataset {
         // Splits: labelled clips in (set, id) order, dealt by `split_by`;
         // held-out sets' clips separately, into calib and holdout only, so
         // that adding them leaves the other clips' splits as they were.
-        let held_flags: Vec<bool> = clips
-            .iter()
-            .map(|c| held_out_sets.contains(&c.set))
-            .collect();
-        let held = |i: usize| held_flags[i];
-        let view_of: Vec<usize> = clips.iter().map(|c| c.index).collect();
-        let labelled: Vec<usize> = (0..clips.len())
-            .filter(|&i| clips[i].labelled && !held(i))
-            .collect();
-        let counts = split_counts(labelled.len(), calib, holdout)?;
+        let (reserved, labelled): (Vec<usize>, Vec<usize>) = (0..clips.len())
+            .filter(|&i| clips[i].labelled)
+            .partition(|&i| held_out_sets.contains(&clips[i].set));
         let scores_of = |members: &[usize]| {
             let rows: Vec<&[Vec<f32>]> = members
                 .iter()
-                .map(|&i| views[view_of[i]].actions().unwrap_or(&[]))
+                .map(|&i| views[clips[i].index].actions().unwrap_or(&[]))
                 .collect();
             super::splits::motion_scores(&rows, &dims)
         };
-        let dealt = super::splits::assign(&scores_of(&labelled), counts, split_by, seed);
-        for (&i, split) in labelled.iter().zip(dealt) {
-            clips[i].split = split;
-        }
-        let reserved: Vec<usize> = (0..clips.len())
-            .filter(|&i| clips[i].labelled && held(i))
-            .collect();
-        if !reserved.is_empty() {
-            let counts = super::splits::held_out_counts(reserved.len(), calib, holdout);
-            let dealt = super::splits::assign_stream(
-                &scores_of(&reserved),
-                counts,
-                split_by,
-                seed,
+        let groups = [
+            (
+                scores_of(&labelled),
+                split_counts(labelled.len(), calib, holdout)?,
+                "fit.splits",
+                labelled,
+            ),
+            (
+                scores_of(&reserved),
+                super::splits::held_out_counts(reserved.len(), calib, holdout),
                 "fit.splits.held-out",
-            );
-            for (&i, split) in reserved.iter().zip(dealt) {
+                reserved,
+            ),
+        ];
+        for (scores, counts, stream, members) in groups {
+            let dealt = super::splits::assign(&scores, counts, split_by, seed, stream);
+            for (i, split) in members.into_iter().zip(dealt) {
                 clips[i].split = split;
             }
         }

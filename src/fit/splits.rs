@@ -44,12 +44,6 @@ pub fn motion_scores(clips: &[&[Vec<f32>]], dims: &[String]) -> Vec<f64> {
         .collect()
 }
 
-/// The split of each of `scores.len()` labelled clips (given in a fixed
-/// order), `counts` of each, dealt by `by` from `seed`.
-pub fn assign(scores: &[f64], counts: SplitCounts, by: SplitBy, seed: u64) -> Vec<Split> {
-    assign_stream(scores, counts, by, seed, "fit.splits")
-}
-
 /// How `n` clips of held-out sets split: calib and holdout only, in the
 /// ratio of the two fractions (the calib share rounded to nearest).
 pub fn held_out_counts(n: usize, calib: f64, holdout: f64) -> SplitCounts {
@@ -61,9 +55,11 @@ pub fn held_out_counts(n: usize, calib: f64, holdout: f64) -> SplitCounts {
     }
 }
 
-/// [`assign`] from the random stream named `stream` (one per group of clips
-/// dealt, so that one group's dealing does not move another's).
-pub fn assign_stream(
+/// The split of each of `scores.len()` labelled clips (given in a fixed
+/// order), `counts` of each, dealt by `by` from `seed` and the random stream
+/// named `stream` (one per group of clips dealt, so that one group's dealing
+/// does not move another's).
+pub fn assign(
     scores: &[f64],
     counts: SplitCounts,
     by: SplitBy,
@@ -140,12 +136,18 @@ mod tests {
         let scores: Vec<f64> = (0..40).map(|i| ((i * 17) % 40) as f64).collect();
         for by in [SplitBy::Motion, SplitBy::Random] {
             for seed in 0..20 {
-                let a = assign(&scores, counts(24, 8, 8), by, seed);
+                let a = assign(&scores, counts(24, 8, 8), by, seed, "fit.splits");
                 assert_eq!(tally(&a), (24, 8, 8), "{by:?} seed {seed}");
-                assert_eq!(a, assign(&scores, counts(24, 8, 8), by, seed));
+                assert_eq!(a, assign(&scores, counts(24, 8, 8), by, seed, "fit.splits"));
             }
         }
-        let small = assign(&[1.0, 2.0, 3.0], counts(1, 1, 1), SplitBy::Motion, 3);
+        let small = assign(
+            &[1.0, 2.0, 3.0],
+            counts(1, 1, 1),
+            SplitBy::Motion,
+            3,
+            "fit.splits",
+        );
         assert_eq!(tally(&small), (1, 1, 1));
     }
 
@@ -157,7 +159,13 @@ mod tests {
         // to the nearest free one).
         let scores: Vec<f64> = (0..40).map(|i| (39 - i) as f64).collect();
         for seed in 0..50 {
-            let a = assign(&scores, counts(24, 8, 8), SplitBy::Motion, seed);
+            let a = assign(
+                &scores,
+                counts(24, 8, 8),
+                SplitBy::Motion,
+                seed,
+                "fit.splits",
+            );
             let by_rank: Vec<Split> = (0..40).map(|r| a[39 - r]).collect();
             for block in by_rank.chunks(5) {
                 let calib = block.iter().filter(|&&s| s == Split::Calib).count();
@@ -176,7 +184,13 @@ mod tests {
         let scores: Vec<f64> = (0..40).map(f64::from).collect();
         let misses = (0..200)
             .filter(|&seed| {
-                let a = assign(&scores, counts(24, 8, 8), SplitBy::Random, seed);
+                let a = assign(
+                    &scores,
+                    counts(24, 8, 8),
+                    SplitBy::Random,
+                    seed,
+                    "fit.splits",
+                );
                 a[30..].iter().all(|&s| s != Split::Calib)
             })
             .count();
@@ -190,13 +204,13 @@ mod tests {
         assert_eq!(tally_counts(held_out_counts(1, 0.2, 0.2)), (0, 1, 0));
         let scores: Vec<f64> = (0..40).map(|i| ((i * 7) % 40) as f64).collect();
         for by in [SplitBy::Motion, SplitBy::Random] {
-            let a = assign_stream(&scores, held_out_counts(40, 0.2, 0.2), by, 7, "other");
+            let a = assign(&scores, held_out_counts(40, 0.2, 0.2), by, 7, "other");
             assert_eq!(tally(&a), (0, 20, 20), "{by:?}");
         }
         // Motion dealing alternates along the ranks: each pair of neighbouring
         // ranks holds one calib and one holdout clip.
         let sorted: Vec<f64> = (0..40).map(f64::from).collect();
-        let a = assign_stream(
+        let a = assign(
             &sorted,
             held_out_counts(40, 0.2, 0.2),
             SplitBy::Motion,
