@@ -13,7 +13,9 @@
 pub mod parts;
 pub mod sbatch;
 
-pub use parts::{MergeOutcome, PartManifest, PartOutcome, merge, parse_part, run_part};
+pub use parts::{
+    MergeOutcome, PartManifest, PartOutcome, merge, merge_if_complete, parse_part, run_part,
+};
 pub use sbatch::{JobPlan, SubmitOptions, SubmitReport, plan, submit};
 
 use std::path::PathBuf;

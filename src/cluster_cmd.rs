@@ -32,7 +32,25 @@ pub fn run_part(spec: &Path, stage: &str, part: &str, threads: usize) -> Result<
             cluster::parts::part_path(&spec.out, stage, part).display()
         ),
         PartOutcome::AlreadyDone => println!("{what}: already done, skipped"),
-        PartOutcome::AlreadyMerged => println!("{what}: the stage is already merged, skipped"),
+        PartOutcome::AlreadyMerged => {
+            println!("{what}: the stage is already merged, skipped");
+            return Ok(0);
+        }
+    }
+    // The last part to finish merges the stage; the merge job then only
+    // finds it merged. A failed merge here does not fail the part: the merge
+    // job (or `actuary merge`) reports it.
+    match cluster::merge_if_complete(&spec, stage, part.count, threads) {
+        Ok(Some(MergeOutcome::Merged)) => println!(
+            "{stage}: all {} part(s) done, merged into {}",
+            part.count,
+            actuary::store::StageManifest::path(&spec.out, stage.name()).display()
+        ),
+        Ok(Some(MergeOutcome::AlreadyMerged)) | Ok(None) => {}
+        Err(e) => eprintln!(
+            "warning: {stage}: all parts are done but merging them here failed \
+             (the merge job or `actuary merge` will report it): {e}"
+        ),
     }
     Ok(0)
 }

@@ -11,6 +11,7 @@
 //!
 //! - [`spec`]: the TOML pipeline file, parsed strictly and resolved into options.
 //! - [`store`]: on-disk formats shared between stages (frame store, manifests, atomic writes).
+//! - [`clip_hashes`]: clip content hashes remembered in the run folder.
 //! - [`runner`]: the only module that knows the stage order, hashing, skipping and resuming.
 //! - [`decode`]: FFmpeg decoding, resampling, colour conversion, crop and resize.
 //! - [`actions`]: action sidecar parsing and mapping onto frame intervals.
@@ -26,6 +27,7 @@ pub mod actions;
 pub mod align;
 pub mod check;
 pub mod cli;
+pub mod clip_hashes;
 pub mod cluster;
 pub mod decode;
 pub mod demo;

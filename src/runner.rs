@@ -14,6 +14,7 @@ use std::time::Instant;
 use rayon::prelude::*;
 use serde::Serialize;
 
+use crate::clip_hashes::ClipHashes;
 use crate::inputs::{self, ClipInput};
 use crate::spec::Spec;
 use crate::store::StageManifest;
@@ -191,7 +192,7 @@ pub struct RunOptions {
 /// Runs (or resumes) the stages of `spec` up to `opts.until`.
 pub fn run(spec: &Spec, opts: &RunOptions) -> Result<Vec<StageOutcome>, RunError> {
     let threads = opts.threads.max(1);
-    let clips = fingerprint(&inputs::list_all(spec)?, threads);
+    let clips = fingerprint(&inputs::list_all(spec)?, threads, &spec.out);
     let mut outcomes = Vec::new();
     let mut previous_key = String::new();
     for stage in Stage::ALL.into_iter().filter(|s| *s <= opts.until) {
@@ -278,27 +279,38 @@ pub fn run_stage(stage: Stage, ctx: &StageContext<'_>) -> Result<StageManifest, 
     }
 }
 
-/// Content hashes of every clip and sidecar, computed in parallel.
-pub fn fingerprint(clips: &[ClipInput], threads: usize) -> Vec<FingerprintedClip> {
-    util::thread_pool(threads).install(|| {
+/// Content hashes of every clip and sidecar, computed in parallel. Hashes of
+/// local files are remembered in `run_dir` (see [`crate::clip_hashes`]), so
+/// an unchanged file is read once, not on every run, part and merge.
+pub fn fingerprint(clips: &[ClipInput], threads: usize, run_dir: &Path) -> Vec<FingerprintedClip> {
+    let hashes = ClipHashes::open(run_dir);
+    let out = util::thread_pool(threads).install(|| {
         clips
             .par_iter()
             .map(|c| FingerprintedClip {
                 input: c.clone(),
-                sha256: content_hash(&c.path).unwrap_or_default(),
-                sidecar_sha256: c.sidecar.as_deref().and_then(content_hash),
+                sha256: content_hash(&hashes, &c.path).unwrap_or_default(),
+                sidecar_sha256: c.sidecar.as_deref().and_then(|p| content_hash(&hashes, p)),
             })
             .collect()
-    })
+    });
+    if let Err(e) = hashes.save() {
+        // Only a speed-up is lost: the next run reads the clips again.
+        eprintln!(
+            "warning: cannot remember clip hashes in {}: {e}",
+            run_dir.join(crate::clip_hashes::FILE_NAME).display()
+        );
+    }
+    out
 }
 
 /// sha256 of a local file, or the listing fingerprint of an object store URL
 /// (see [`crate::storage`]).
-fn content_hash(path: &Path) -> Option<String> {
+fn content_hash(hashes: &ClipHashes, path: &Path) -> Option<String> {
     if crate::storage::path_is_url(path) {
         crate::storage::fingerprint(&path.to_string_lossy())
     } else {
-        util::sha256_file(path).ok()
+        hashes.sha256(path).ok()
     }
 }
 

@@ -4,7 +4,10 @@
 //! `RUN/<stage>/parts/K-of-N.json` (a [`PartManifest`]: the stage manifest of
 //! that part plus the part's clips) atomically. `merge` checks that every part
 //! exists with the current stage key and folds them into
-//! `RUN/<stage>/manifest.json` with that same key.
+//! `RUN/<stage>/manifest.json` with that same key. `merge_if_complete` lets
+//! the part that finishes last do the merge at once, so the stage is done
+//! without waiting for the scheduler to start the merge job (which then finds
+//! the stage merged and stops).
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -98,6 +101,7 @@ pub fn fingerprinted(spec: &Spec, threads: usize) -> Result<Vec<FingerprintedCli
     Ok(runner::fingerprint(
         &crate::inputs::list_all(spec)?,
         threads,
+        &spec.out,
     ))
 }
 
@@ -279,6 +283,50 @@ pub fn merge(
     let path = StageManifest::path(&spec.out, stage.name());
     manifest.write(&spec.out).map_err(io_err(&path))?;
     Ok(MergeOutcome::Merged)
+}
+
+/// The lock file a part holds while it merges: `RUN/<stage>/parts/merging`.
+pub fn merge_lock_path(run_dir: &Path, stage: Stage) -> PathBuf {
+    parts_dir(run_dir, stage).join("merging")
+}
+
+/// Removes the merge lock when dropped.
+struct MergeLock(PathBuf);
+
+impl Drop for MergeLock {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_file(&self.0);
+    }
+}
+
+/// Merges the stage when all `count` part manifests exist and no other
+/// process is merging it (checked with a lock file created exclusively);
+/// `None` when it did not try. Called by each part when it finishes, so the
+/// last one merges. A lock left by a killed process only stops this shortcut:
+/// `merge` itself does not look at the lock.
+pub fn merge_if_complete(
+    spec: &Spec,
+    stage: Stage,
+    count: u32,
+    threads: usize,
+) -> Result<Option<MergeOutcome>, ClusterError> {
+    let all_there =
+        (0..count).all(|index| part_path(&spec.out, stage, Partition { index, count }).is_file());
+    if !all_there {
+        return Ok(None);
+    }
+    let lock = merge_lock_path(&spec.out, stage);
+    match std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(&lock)
+    {
+        Ok(_) => {}
+        Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists => return Ok(None),
+        Err(e) => return Err(io_err(&lock)(e)),
+    }
+    let _held = MergeLock(lock);
+    merge(spec, stage, count, threads).map(Some)
 }
 
 /// Folds decode parts: per-clip lines in pipeline order, counts and timings summed.

@@ -145,9 +145,9 @@ fn partitioned_decode_merges_to_the_single_machine_result() {
         early.2
     );
 
-    for k in 0..4 {
+    let part = |k: u32| {
         let part = format!("{k}/4");
-        let out = actuary(&[
+        actuary(&[
             "run",
             s(&parted),
             "--stage",
@@ -156,7 +156,11 @@ fn partitioned_decode_merges_to_the_single_machine_result() {
             &part,
             "-j",
             "2",
-        ]);
+        ])
+    };
+    let merged = fx.root.join("run-parts/decode/manifest.json");
+    for k in 0..3 {
+        let out = part(k);
         ok(&out);
         assert!(out.1.contains("done"), "{}", out.1);
         assert!(
@@ -165,18 +169,32 @@ fn partitioned_decode_merges_to_the_single_machine_result() {
                 .is_file()
         );
     }
-    // Rerunning a finished part does nothing.
-    let again = actuary(&["run", s(&parted), "--stage", "decode", "--part", "2/4"]);
+    // Rerunning a finished part does nothing, and with a part missing nothing merges.
+    let again = part(2);
     assert!(again.1.contains("already done"), "{}", again.1);
-    assert!(!fx.root.join("run-parts/decode/manifest.json").exists());
-    ok(&actuary(&[
-        "merge",
-        s(&parted),
-        "--stage",
-        "decode",
-        "--parts",
-        "4",
-    ]));
+    assert!(!merged.exists());
+
+    // The last part merges the stage itself, unless another process holds
+    // the merge lock; `actuary merge` does not look at the lock.
+    let lock = fx.root.join("run-parts/decode/parts/merging");
+    std::fs::write(&lock, b"").unwrap();
+    let last = part(3);
+    ok(&last);
+    assert!(!last.1.contains("merged"), "{}", last.1);
+    assert!(!merged.exists(), "merged despite the lock");
+    std::fs::remove_file(&lock).unwrap();
+    let last = part(3);
+    ok(&last);
+    assert!(
+        last.1.contains("already done") && last.1.contains("all 4 part(s) done, merged"),
+        "{}",
+        last.1
+    );
+    assert!(merged.is_file());
+    assert!(!lock.exists(), "the lock is removed after the merge");
+    let merge = actuary(&["merge", s(&parted), "--stage", "decode", "--parts", "4"]);
+    ok(&merge);
+    assert!(merge.1.contains("already merged"), "{}", merge.1);
     assert_same_decode(&fx.root.join("run-single"), &fx.root.join("run-parts"));
 
     // The merged manifest carries the single-machine key, so `run` skips decode.

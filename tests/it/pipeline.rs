@@ -200,6 +200,68 @@ fn run_skips_unchanged_and_reruns_changed() {
     );
 }
 
+/// `sha256sum FILE` (GNU coreutils): the reference for a file's content hash.
+fn sha256sum(path: &Path) -> String {
+    let out = crate::util::run_stdout("sha256sum", &[s(path)]);
+    String::from_utf8(out).unwrap()[..64].to_string()
+}
+
+#[test]
+fn remembered_clip_hashes_match_sha256sum_and_a_rewritten_file_is_read_again() {
+    if !require_ffmpeg() {
+        return;
+    }
+    let f = fixture(2, 1, "");
+    let run = f.root.join("run");
+    // Only files left alone for a while are remembered.
+    std::thread::sleep(std::time::Duration::from_secs_f64(
+        ::actuary::clip_hashes::SETTLED_S + 0.2,
+    ));
+    let (code, _, err) = actuary(&["run", s(&f.spec), "--until", "decode"]);
+    assert_eq!(code, 0, "{err}");
+    let remembered = |path: &Path| -> String {
+        let text = std::fs::read_to_string(run.join("clip-hashes.json")).unwrap();
+        let v: serde_json::Value = serde_json::from_str(&text).unwrap();
+        v["files"][s(path)]["sha256"]
+            .as_str()
+            .unwrap_or_default()
+            .to_string()
+    };
+    let clips = walk(&f.root.join("robot"))
+        .into_iter()
+        .chain(walk(&f.root.join("human")))
+        .collect::<Vec<_>>();
+    assert_eq!(clips.len(), 5, "3 clips and 2 sidecars: {clips:?}");
+    for path in &clips {
+        assert_eq!(remembered(path), sha256sum(path), "{}", path.display());
+    }
+
+    // Rewrite a sidecar in place with the same length and put its
+    // modification time back: its change time still tells, so it is read
+    // again and decode reruns.
+    let sidecar = f.root.join("robot/r1.actions.csv");
+    let modified = std::fs::metadata(&sidecar).unwrap().modified().unwrap();
+    let text = std::fs::read_to_string(&sidecar).unwrap();
+    let changed = text.replacen(",0.0000,", ",0.0001,", 1);
+    assert!(changed != text && changed.len() == text.len());
+    std::thread::sleep(std::time::Duration::from_millis(50));
+    std::fs::write(&sidecar, &changed).unwrap();
+    std::fs::File::options()
+        .write(true)
+        .open(&sidecar)
+        .unwrap()
+        .set_modified(modified)
+        .unwrap();
+    let (code, _, err) = actuary(&["run", s(&f.spec), "--until", "decode"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(!err.contains("decode: up to date"), "{err}");
+    let record: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(run.join("decode/clips/robot/r1.clip.json")).unwrap(),
+    )
+    .unwrap();
+    assert_eq!(record["sidecar_fingerprint"], sha256sum(&sidecar).as_str());
+}
+
 #[test]
 fn bad_clip_is_skipped_or_stops_per_policy() {
     if !require_ffmpeg() {
