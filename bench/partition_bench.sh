@@ -3,12 +3,15 @@
 #
 #   bash .ci/slurm.sh start
 #   bash bench/partition_bench.sh [ROBOT_CLIPS] [HUMAN_CLIPS] [SIZE]
+#   (env: COPIES, REPEATS, BIN)
 #
-# Generates the demo clips (SIZE x SIZE pixels, default 256, so that decoding,
+# Generates the demo clips (SIZE x SIZE pixels, default 480, near the 640x480
+# of common robot cameras (common practice, no source), so that decoding,
 # not Slurm's scheduling, is most of the work) and COPIES more copies of
-# each under new names (env, default 9), then decodes the same clips twice through Slurm in
-# one go: as 1 part (one task, 1 CPU) and as 2 parts (two tasks, 1 CPU each),
-# each into a fresh run folder. Wall time is from `actuary submit` to the
+# each under new names (env, default 9), then decodes the same clips through
+# Slurm as 1 part (one task, 1 CPU) and as 2 parts (two tasks, 1 CPU each),
+# REPEATS rounds of both (env, default 3), each run into a fresh run folder,
+# and prints every run and the median speed-up. Wall time is from `actuary submit` to the
 # merged stage manifest's appearance (watched with a cheap file test); the per-part overhead is that wall time minus the
 # slowest part's own time (submission, scheduling, start-up and merge).
 # BIN overrides the program (default: target/release/actuary, built if missing).
@@ -16,7 +19,7 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 ROBOT="${1:-40}"
 HUMAN="${2:-40}"
-SIZE="${3:-256}"
+SIZE="${3:-480}"
 BIN="${BIN:-target/release/actuary}"
 [ -x "$BIN" ] || cargo build --release --bin actuary >/dev/null
 BIN="$(realpath "$BIN")"
@@ -94,19 +97,36 @@ print(f"{wall:.2f} {t['slowest_part_s']:.2f} {t['merge_s']:.2f} {m['counts']['fr
 EOF
 }
 
-read -r W1 S1 M1 F1 D1 < <(measure one 1)
-read -r W2 S2 M2 F2 D2 < <(measure two 2)
-python3 - "$W1" "$S1" "$M1" "$F1" "$D1" "$W2" "$S2" "$M2" "$F2" "$D2" "$ROBOT" "$HUMAN" "$(nproc)" "$SIZE" <<'EOF'
-import sys
-w1, s1, m1, f1, d1, w2, s2, m2, f2, d2 = map(float, sys.argv[1:11])
-robot, human, cores, size = sys.argv[11], sys.argv[12], sys.argv[13], sys.argv[14]
-print(f"decode through local Slurm, {robot}+{human} demo clips of {size}x{size} px, {int(f1)} frames decoded to 64x64, {cores} cores")
-print("| parts | wall s | slowest part s | overhead s | merge s | frames/s per core |")
-print("| --- | --- | --- | --- | --- | --- |")
-for n, w, s, m, f, d in [(1, w1, s1, m1, f1, d1), (2, w2, s2, m2, f2, d2)]:
-    print(f"| {n} | {w:.2f} | {s:.2f} | {w - s:.2f} | {m:.2f} | {f / d:.0f} |")
-print(f"speed-up (wall, 1 part / 2 parts): {w1 / w2:.2f}x")
-rate = f1 / d1
+# REPEATS (env, default 3) rounds, each a 1-part run then a 2-part run, so
+# that both see the same drift of a shared machine; every run starts from a
+# fresh run folder.
+REPEATS="${REPEATS:-3}"
+ROWS="$WORK/rows.txt"
+: >"$ROWS"
+for r in $(seq 1 "$REPEATS"); do
+  echo "1 $(measure "one$r" 1)" >>"$ROWS"
+  rm -rf "$WORK/run-one$r"
+  echo "2 $(measure "two$r" 2)" >>"$ROWS"
+  rm -rf "$WORK/run-two$r"
+done
+python3 - "$ROWS" "$ROBOT" "$HUMAN" "$(nproc)" "$SIZE" <<'EOF'
+import statistics, sys
+rows = [line.split() for line in open(sys.argv[1])]
+robot, human, cores, size = sys.argv[2:6]
+runs = {1: [], 2: []}
+for parts, wall, slowest, merge, frames, decode in rows:
+    runs[int(parts)].append(tuple(map(float, (wall, slowest, merge, frames, decode))))
+frames = int(runs[1][0][3])
+print(f"decode through local Slurm, {robot}+{human} demo clips of {size}x{size} px, {frames} frames decoded to 64x64, {cores} cores, {len(runs[1])} rounds")
+print("| round | parts | wall s | slowest part s | overhead s | merge s | frames/s per core |")
+print("| --- | --- | --- | --- | --- | --- | --- |")
+for i, (one, two) in enumerate(zip(runs[1], runs[2]), 1):
+    for n, (w, s, m, f, d) in ((1, one), (2, two)):
+        print(f"| {i} | {n} | {w:.2f} | {s:.2f} | {w - s:.2f} | {m:.2f} | {f / d:.0f} |")
+ratios = [one[0] / two[0] for one, two in zip(runs[1], runs[2])]
+print("speed-up per round (wall, 1 part / 2 parts): " + ", ".join(f"{r:.2f}x" for r in ratios))
+print(f"median speed-up: {statistics.median(ratios):.2f}x")
+rate = statistics.median(f / d for (_, _, _, f, d) in runs[1])
 night = 8 * 3600
 for nodes in (4, 16, 64):
     print(f"one night (8 h) on {nodes} nodes x 16 cores at {rate:.0f} frames/s per core: "
