@@ -21,6 +21,7 @@ use std::io;
 use std::os::unix::fs::MetadataExt;
 use std::path::{Path, PathBuf};
 use std::sync::Mutex;
+use std::sync::atomic::{AtomicU64, Ordering};
 use std::time::{SystemTime, UNIX_EPOCH};
 
 use serde::{Deserialize, Serialize};
@@ -86,7 +87,7 @@ pub struct ClipHashes {
     /// Every file asked about in this process, with its current hash.
     used: Mutex<BTreeMap<PathBuf, Remembered>>,
     /// Files that had to be read.
-    read: Mutex<u64>,
+    read: AtomicU64,
 }
 
 impl ClipHashes {
@@ -101,7 +102,7 @@ impl ClipHashes {
             path,
             known,
             used: Mutex::new(BTreeMap::new()),
-            read: Mutex::new(0),
+            read: AtomicU64::new(0),
         }
     }
 
@@ -122,7 +123,7 @@ impl ClipHashes {
             return Ok(r.sha256.clone());
         }
         let sha256 = util::sha256_file(path)?;
-        *self.read.lock().expect("read counter lock") += 1;
+        self.read.fetch_add(1, Ordering::Relaxed);
         let after = Stamp::of(path)?;
         if after == before && after.age_s(now()) >= SETTLED_S {
             self.used.lock().expect("hash table lock").insert(
@@ -138,7 +139,7 @@ impl ClipHashes {
 
     /// How many files were read (not found remembered) so far.
     pub fn files_read(&self) -> u64 {
-        *self.read.lock().expect("read counter lock")
+        self.read.load(Ordering::Relaxed)
     }
 
     /// Writes the hashes of the files asked about in this process (atomically),
