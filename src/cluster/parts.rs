@@ -286,7 +286,7 @@ pub fn merge(
 }
 
 /// The lock file a part holds while it merges: `RUN/<stage>/parts/merging`.
-pub fn merge_lock_path(run_dir: &Path, stage: Stage) -> PathBuf {
+fn merge_lock_path(run_dir: &Path, stage: Stage) -> PathBuf {
     parts_dir(run_dir, stage).join("merging")
 }
 
@@ -316,16 +316,15 @@ pub fn merge_if_complete(
         return Ok(None);
     }
     let lock = merge_lock_path(&spec.out, stage);
-    match std::fs::OpenOptions::new()
+    let _held = match std::fs::OpenOptions::new()
         .write(true)
         .create_new(true)
         .open(&lock)
     {
-        Ok(_) => {}
+        Ok(_) => MergeLock(lock),
         Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists => return Ok(None),
         Err(e) => return Err(io_err(&lock)(e)),
-    }
-    let _held = MergeLock(lock);
+    };
     merge(spec, stage, count, threads).map(Some)
 }
 

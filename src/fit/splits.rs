@@ -126,6 +126,11 @@ mod tests {
         }
     }
 
+    /// 40 clips' worth of splits (24 / 8 / 8) on the fit stage's stream.
+    fn deal_24_8_8(scores: &[f64], by: SplitBy, seed: u64) -> Vec<Split> {
+        assign(scores, counts(24, 8, 8), by, seed, "fit.splits")
+    }
+
     fn tally(s: &[Split]) -> (usize, usize, usize) {
         let c = |x| s.iter().filter(|&&v| v == x).count();
         (c(Split::Train), c(Split::Calib), c(Split::Holdout))
@@ -136,9 +141,9 @@ mod tests {
         let scores: Vec<f64> = (0..40).map(|i| ((i * 17) % 40) as f64).collect();
         for by in [SplitBy::Motion, SplitBy::Random] {
             for seed in 0..20 {
-                let a = assign(&scores, counts(24, 8, 8), by, seed, "fit.splits");
+                let a = deal_24_8_8(&scores, by, seed);
                 assert_eq!(tally(&a), (24, 8, 8), "{by:?} seed {seed}");
-                assert_eq!(a, assign(&scores, counts(24, 8, 8), by, seed, "fit.splits"));
+                assert_eq!(a, deal_24_8_8(&scores, by, seed));
             }
         }
         let small = assign(
@@ -159,13 +164,7 @@ mod tests {
         // to the nearest free one).
         let scores: Vec<f64> = (0..40).map(|i| (39 - i) as f64).collect();
         for seed in 0..50 {
-            let a = assign(
-                &scores,
-                counts(24, 8, 8),
-                SplitBy::Motion,
-                seed,
-                "fit.splits",
-            );
+            let a = deal_24_8_8(&scores, SplitBy::Motion, seed);
             let by_rank: Vec<Split> = (0..40).map(|r| a[39 - r]).collect();
             for block in by_rank.chunks(5) {
                 let calib = block.iter().filter(|&&s| s == Split::Calib).count();
@@ -184,13 +183,7 @@ mod tests {
         let scores: Vec<f64> = (0..40).map(f64::from).collect();
         let misses = (0..200)
             .filter(|&seed| {
-                let a = assign(
-                    &scores,
-                    counts(24, 8, 8),
-                    SplitBy::Random,
-                    seed,
-                    "fit.splits",
-                );
+                let a = deal_24_8_8(&scores, SplitBy::Random, seed);
                 a[30..].iter().all(|&s| s != Split::Calib)
             })
             .count();
